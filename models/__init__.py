@@ -1,0 +1,42 @@
+"""Physics of povmfit: probe states, detector stages and families, POVMs and Wigner maps.
+
+Pure functions, no input or output. Photon numbers are mean photons per shot at the
+reference plane; ``alpha`` is the complex displacement amplitude; POVMs are arrays
+``theta[k, n] = P(outcome k | n photons)`` of shape (n_outcomes, n_photons).
+"""
+import povmfit as _povmfit  # noqa: F401  (switches JAX to float64)
+
+from ._families import FAMILIES, FEATURES, DetectorModel, parse_model_spec
+from ._povm import POVM
+from ._probes import (
+    choose_cutoff,
+    coherent_distribution,
+    displaced_thermal_distribution,
+    fock_distribution,
+    probe_distributions,
+    squeezed_vacuum_distribution,
+    tail_mass,
+    thermal_distribution,
+)
+from ._stages import (
+    borel_crosstalk_matrix,
+    click_dark_matrix,
+    loss_matrix,
+    pixel_crosstalk_matrix,
+    poisson_dark_matrix,
+    readout_matrix,
+    saturation_matrix,
+    split_pixel_matrix,
+    uniform_pixel_matrix,
+)
+from ._wigner import fock_wigner_table, povm_wigner, saturating_wigner
+
+__all__ = [
+    "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
+    "choose_cutoff", "coherent_distribution", "displaced_thermal_distribution",
+    "fock_distribution", "probe_distributions", "squeezed_vacuum_distribution", "tail_mass",
+    "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",
+    "pixel_crosstalk_matrix", "poisson_dark_matrix", "readout_matrix", "saturation_matrix",
+    "split_pixel_matrix", "uniform_pixel_matrix", "fock_wigner_table", "povm_wigner",
+    "saturating_wigner",
+]

@@ -1,0 +1,260 @@
+"""Detector families: chains of stages with switchable features, and the model spec syntax.
+
+Spec syntax (ours)::
+
+    FAMILY[:SIZE][+FEATURE[:VALUE]]...
+
+    threshold                 on/off detector, loss only
+    threshold+dark            on/off detector with dark clicks
+    pnr:6+dark+readout        number-resolving, outcomes 0..6 (6 means "6 or more")
+    array:8+dark+crosstalk    8 click pixels (outcomes 0..8 pixels fired)
+    array:16+dark+unequal_split+saturation:10
+
+Features: ``dark``, ``crosstalk``, ``readout``, ``unequal_split`` (array only) and
+``saturation:K`` (array only; pnr always saturates at its size).
+
+Chains (POVM = product of stage matrices, applied right to left):
+
+    threshold:  loss -> pixels(1) -> dark
+    array:N:    loss -> pixels(N, uniform or split) -> dark -> crosstalk -> readout -> saturation
+    pnr:K:      loss -> dark (additive Poisson) -> crosstalk (Borel) -> readout/saturation at K
+"""
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+import jax
+import jax.numpy as jnp
+
+from . import _stages as st
+
+__all__ = ["DetectorModel", "parse_model_spec", "FAMILIES", "FEATURES"]
+
+FAMILIES = ("threshold", "pnr", "array")
+FEATURES = ("dark", "crosstalk", "readout", "unequal_split", "saturation")
+_ALLOWED = {
+    "threshold": {"dark"},
+    "pnr": {"dark", "crosstalk", "readout"},
+    "array": {"dark", "crosstalk", "readout", "unequal_split", "saturation"},
+}
+_MAX_SPLIT_PIXELS = 16
+_READOUT_MARGIN = 16  # extra internal counts kept above the top outcome (8 sigma at width 2)
+
+# name: (lower bound, upper bound, starting value)
+_PARAMETER_RANGES = {
+    "efficiency": (1e-9, 1.0, 0.5),
+    "dark_probability": (0.0, 0.999, 1e-3),
+    "dark_mean": (0.0, 20.0, 1e-3),
+    "crosstalk_probability": (0.0, 0.999, 0.02),
+    "readout_width": (1e-3, 2.0, 0.2),
+    "split_log_ratio": (-10.0, 10.0, 0.0),
+}
+
+
+@dataclass(frozen=True)
+class DetectorModel:
+    """A parametric detector model.
+
+    Attributes:
+        family: ``"threshold"``, ``"pnr"`` or ``"array"``.
+        size: pixels for ``array`` (1 for ``threshold``), top outcome K for ``pnr``.
+        features: sorted tuple of switched-on features (``saturation`` excluded).
+        saturation: top reported outcome for ``array`` with saturation, else None.
+    """
+
+    family: str
+    size: int = 1
+    features: tuple[str, ...] = ()
+    saturation: int | None = None
+    _names: tuple[str, ...] = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self):
+        if self.family not in FAMILIES:
+            raise ValueError(f"unknown detector family {self.family!r}; expected one of {', '.join(FAMILIES)}")
+        if self.family == "threshold" and self.size != 1:
+            raise ValueError("a threshold detector has no size")
+        if self.size < 1:
+            raise ValueError(f"{self.family} size must be >= 1, got {self.size}")
+        unknown = set(self.features) - _ALLOWED[self.family]
+        if unknown:
+            raise ValueError(f"feature(s) {', '.join(sorted(unknown))} not available for {self.family}")
+        if "unequal_split" in self.features and not 2 <= self.size <= _MAX_SPLIT_PIXELS:
+            raise ValueError(f"unequal_split needs 2..{_MAX_SPLIT_PIXELS} pixels, got {self.size}")
+        if "crosstalk" in self.features and self.family == "array" and self.size < 2:
+            raise ValueError("pixel crosstalk needs at least 2 pixels")
+        if self.saturation is not None:
+            if self.family != "array":
+                raise ValueError("saturation:K is for arrays; a pnr detector saturates at its size")
+            if not 1 <= self.saturation < self.size:
+                raise ValueError(f"saturation must be between 1 and {self.size - 1}, got {self.saturation}")
+        object.__setattr__(self, "features", tuple(sorted(set(self.features), key=FEATURES.index)))
+        object.__setattr__(self, "_names", self._parameter_names())
+
+    # ----- description -------------------------------------------------------------
+    @property
+    def max_outcome(self) -> int:
+        """Largest reported outcome K (outcomes are 0..K)."""
+        if self.saturation is not None:
+            return self.saturation
+        return self.size
+
+    @property
+    def n_outcomes(self) -> int:
+        return self.max_outcome + 1
+
+    @property
+    def feature_list(self) -> list[str]:
+        """Features as DESIGN lists them, saturation included."""
+        out = list(self.features)
+        if self.saturation is not None:
+            out.append("saturation")
+        return out
+
+    @property
+    def spec(self) -> str:
+        head = self.family if self.family == "threshold" else f"{self.family}:{self.size}"
+        tail = [f"+{f}" for f in self.features]
+        if self.saturation is not None:
+            tail.append(f"+saturation:{self.saturation}")
+        return head + "".join(tail)
+
+    def __str__(self) -> str:
+        return self.spec
+
+    # ----- parameters ------------------------------------------------------------
+    def _parameter_names(self) -> tuple[str, ...]:
+        names = ["efficiency"]
+        if "dark" in self.features:
+            names.append("dark_mean" if self.family == "pnr" else "dark_probability")
+        if "crosstalk" in self.features:
+            names.append("crosstalk_probability")
+        if "readout" in self.features:
+            names.append("readout_width")
+        if "unequal_split" in self.features:
+            names += [f"split_log_ratio_{i}" for i in range(1, self.size)]
+        return tuple(names)
+
+    @property
+    def parameter_names(self) -> tuple[str, ...]:
+        """Order of the parameter vector taken by :meth:`povm`."""
+        return self._names
+
+    def bounds(self) -> dict[str, tuple[float, float]]:
+        """Allowed range of each parameter (inclusive, as used by the fitters)."""
+        out = {}
+        for name in self._names:
+            lo, hi, _ = _PARAMETER_RANGES[_base_name(name)]
+            if name == "crosstalk_probability" and self.family == "pnr":
+                hi = 0.6  # Borel branching mean L = -log(1-p) must stay below 1
+            out[name] = (lo, hi)
+        return out
+
+    def starting_values(self) -> dict[str, float]:
+        return {name: _PARAMETER_RANGES[_base_name(name)][2] for name in self._names}
+
+    def unpack(self, params) -> dict:
+        """Parameter vector -> {name: value} (JAX-traceable)."""
+        return {name: params[i] for i, name in enumerate(self._names)}
+
+    def pack(self, values: dict) -> jnp.ndarray:
+        missing = [n for n in self._names if n not in values]
+        if missing:
+            raise ValueError(f"model {self.spec} needs parameter(s) {', '.join(missing)}")
+        return jnp.asarray([float(values[n]) for n in self._names], dtype=jnp.float64)
+
+    def split_ratios(self, params):
+        """Splitting probabilities of the pixels (softmax of 0 and the log ratios)."""
+        p = self.unpack(params)
+        logits = jnp.concatenate([jnp.zeros(1), jnp.stack([p[f"split_log_ratio_{i}"] for i in range(1, self.size)])])
+        return jax.nn.softmax(logits)
+
+    # ----- the POVM ----------------------------------------------------------------
+    def povm(self, params, n_photons: int):
+        """POVM ``theta[k, n] = P(outcome k | n photons)``, shape (n_outcomes, n_photons).
+
+        ``params`` is a vector in :attr:`parameter_names` order; ``n_photons`` is static.
+        jit-able, vmap-able over parameter batches and differentiable in every parameter.
+        """
+        p = self.unpack(jnp.asarray(params, dtype=jnp.float64))
+        matrix = st.loss_matrix(p["efficiency"], n_photons)
+        if self.family == "pnr":
+            return self._pnr_chain(p, matrix, n_photons)
+        return self._click_chain(p, params, matrix, n_photons)
+
+    def _click_chain(self, p, params, matrix, n_photons):
+        n = self.size
+        if "unequal_split" in self.features:
+            pixel = st.split_pixel_matrix(self.split_ratios(params), n_photons)
+        else:
+            pixel = st.uniform_pixel_matrix(n, n_photons)
+        matrix = pixel @ matrix
+        if "dark" in self.features:
+            matrix = st.click_dark_matrix(p["dark_probability"], n) @ matrix
+        if "crosstalk" in self.features:
+            matrix = st.pixel_crosstalk_matrix(p["crosstalk_probability"], n) @ matrix
+        if "readout" in self.features:
+            return st.readout_matrix(p["readout_width"], n + 1, self.n_outcomes) @ matrix
+        if self.saturation is not None:
+            return st.saturation_matrix(n + 1, self.saturation) @ matrix
+        return matrix
+
+    def _pnr_chain(self, p, matrix, n_photons):
+        top = self.size
+        adds_counts = "dark" in self.features or "crosstalk" in self.features
+        inner = max(n_photons, top + 1) + (_READOUT_MARGIN if adds_counts or "readout" in self.features else 0)
+        if "dark" in self.features:
+            matrix = st.poisson_dark_matrix(p["dark_mean"], n_photons, inner) @ matrix
+        else:
+            matrix = jnp.zeros((inner, n_photons)).at[:n_photons].set(matrix)
+        if "crosstalk" in self.features:
+            matrix = st.borel_crosstalk_matrix(p["crosstalk_probability"], inner, inner) @ matrix
+        if "readout" in self.features:
+            return st.readout_matrix(p["readout_width"], inner, top + 1) @ matrix
+        return st.saturation_matrix(inner, top) @ matrix
+
+    # ----- figures -----------------------------------------------------------------
+    def vacuum_click_probability(self, params):
+        """Probability of any non-zero outcome with no light: 1 - theta[0, 0]."""
+        return 1.0 - self.povm(params, 2)[0, 0]
+
+
+def _base_name(name: str) -> str:
+    return "split_log_ratio" if name.startswith("split_log_ratio") else name
+
+
+_SPEC_HEAD = re.compile(r"^(threshold|pnr|array)(?::(\d+))?$")
+
+
+def parse_model_spec(spec: str) -> DetectorModel:
+    """Parse ``FAMILY[:SIZE][+FEATURE[:VALUE]]...`` into a :class:`DetectorModel`.
+
+    Raises ValueError with a message naming the offending part.
+    """
+    text = spec.strip().lower().replace(" ", "")
+    if not text:
+        raise ValueError("empty model spec")
+    head, *parts = text.split("+")
+    match = _SPEC_HEAD.match(head)
+    if not match:
+        raise ValueError(f"model spec {spec!r}: expected threshold, pnr:K or array:N before the first '+', got {head!r}")
+    family, size = match.group(1), match.group(2)
+    if family == "threshold":
+        if size not in (None, "1"):
+            raise ValueError(f"model spec {spec!r}: threshold takes no size")
+        size = 1
+    elif size is None:
+        raise ValueError(f"model spec {spec!r}: {family} needs a size, e.g. {family}:8")
+    features, saturation = [], None
+    for part in parts:
+        name, _, value = part.partition(":")
+        if name == "saturation":
+            if not value.isdigit():
+                raise ValueError(f"model spec {spec!r}: saturation needs a top outcome, e.g. saturation:6")
+            saturation = int(value)
+        elif name in FEATURES and not value:
+            features.append(name)
+        else:
+            raise ValueError(f"model spec {spec!r}: unknown feature {part!r}; known: {', '.join(FEATURES)}")
+    return DetectorModel(family, int(size), tuple(features), saturation)
+

@@ -1,0 +1,3 @@
+from povmfit.fitting.cli import main
+
+raise SystemExit(main())
