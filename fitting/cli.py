@@ -1,26 +1,57 @@
-"""The ``povmfit`` command line."""
+"""The ``povmfit`` command line.
+
+Each verb lives in its own module ``povmfit.fitting.cmd_<verb>`` exposing
+``register(subparsers)`` (adds its parser, with ``--help`` text and an example) and
+``run(args) -> int``. Bad input raises :class:`InputError`; it is printed as one line on
+stderr and the exit code is 2.
+"""
 from __future__ import annotations
 
 import argparse
+import importlib
 import sys
 
 import povmfit
 
+from ._io import InputError
+
+VERBS = ("fit", "reconstruct", "emulate", "simulate", "demo")
+
 
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="povmfit", description="Characterise photon detectors from probe-state counts.")
+    parser = argparse.ArgumentParser(
+        prog="povmfit", description="Characterise photon detectors from probe-state counts."
+    )
     parser.add_argument("--version", action="version", version=f"povmfit {povmfit.__version__}")
-    parser.add_subparsers(dest="verb")
+    subparsers = parser.add_subparsers(dest="verb", metavar="VERB")
+    for verb in VERBS:
+        try:
+            module = importlib.import_module(f"povmfit.fitting.cmd_{verb}")
+        except ModuleNotFoundError as error:
+            if error.name != f"povmfit.fitting.cmd_{verb}":
+                raise
+            continue
+        sub = module.register(subparsers)
+        sub.set_defaults(handler=module.run)
     return parser
+
+
 
 
 def main(argv=None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
-    if args.verb is None:
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as stop:  # argparse already printed its one-line usage error
+        return 2 if stop.code not in (0, None) else 0
+    if getattr(args, "handler", None) is None:
         parser.print_help()
         return 0
-    return 0
+    try:
+        return int(args.handler(args) or 0)
+    except InputError as error:
+        print(f"povmfit {args.verb}: error: {error}", file=sys.stderr)
+        return 2
 
 
 if __name__ == "__main__":

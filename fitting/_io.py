@@ -1,0 +1,48 @@
+"""Errors at the edge and atomic output."""
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import tempfile
+from pathlib import Path
+
+__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "file_sha256"]
+
+
+class InputError(ValueError):
+    """Bad user input. The message is one line: file, row, column and what is wrong.
+
+    The command line prints it to stderr and exits with code 2, writing nothing.
+    """
+
+
+def atomic_write_bytes(path, data: bytes) -> None:
+    """Write ``data`` to ``path`` via a temporary file in the same folder, then rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    handle, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "wb") as out:
+            out.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def atomic_write_text(path, text: str) -> None:
+    atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def write_json(path, payload) -> None:
+    atomic_write_text(path, json.dumps(payload, indent=2, allow_nan=False) + "\n")
+
+
+def file_sha256(path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
