@@ -164,6 +164,10 @@ class _Table:
             return self.source if row is None else f"{self.source}: row {row + 1}"
         return f"{self.source}:{1 if row is None else self.lines[row]}"
 
+    def place(self, row: int) -> str:
+        """'line L' (CSV) or 'row R' (Parquet) of data row ``row`` (0-based), without the file."""
+        return f"row {row + 1}" if self.lines is None else f"line {self.lines[row]}"
+
 
 def _refuse(where: str, column: str | None, what: str):
     what = " ".join(str(what).split())  # always one line
@@ -368,7 +372,7 @@ def _first_over_limit(coherent: np.ndarray, thermal: np.ndarray) -> int | None:
 
 
 def _validated_scan(coherent, thermal, counts, phase, labels, source, sha256, where,
-                    count_names, shots=None, shots_where=None, pattern_counts=None) -> Scan:
+                    count_names, shots=None, pattern_counts=None) -> Scan:
     """Checks shared by every layout. ``where(row)`` names a probe row in messages;
     ``count_names[k]`` names the column of outcome k."""
     coherent = np.asarray(coherent, dtype=float)
@@ -378,6 +382,8 @@ def _validated_scan(coherent, thermal, counts, phase, labels, source, sha256, wh
     if phase is not None:
         phase = np.asarray(phase, dtype=float)
         _check_finite(phase, "phase_rad", where)
+    if shots is not None:
+        shots = _check_integers(shots, "shots", where, what="shots")
     counts = np.column_stack([_check_integers(counts[:, k], count_names[k], where) for k in range(counts.shape[1])])
     totals = counts.sum(axis=1)
     if shots is None:
@@ -386,7 +392,6 @@ def _validated_scan(coherent, thermal, counts, phase, labels, source, sha256, wh
         if empty.size:
             _refuse(where(empty[0]), count_names[0], "all counts of this probe are 0 (no shots)")
     else:
-        shots = _check_integers(shots, "shots", shots_where or where, what="shots")
         empty = np.flatnonzero(shots == 0)
         if empty.size:
             _refuse(where(empty[0]), "shots", "shots must be > 0, got 0")
@@ -470,8 +475,8 @@ def _probe_rows(table: _Table):
         probe_of_row[row] = index_of.setdefault(label, len(index_of))
         for name, values in settings.items():
             if values[row] != values[first]:
-                _refuse(table.where(row), name, f"probe {label!r} has {values[row]!r} here but "
-                        f"{values[first]!r} at {table.where(first)} (a probe's settings must agree on all its rows)")
+                _refuse(table.where(row), name, f"probe {label!r} has {float(values[row])!r} here but "
+                        f"{float(values[first])!r} on {table.place(first)} (a probe's settings must agree on all its rows)")
     firsts = np.array(list(first_row.values()))
     per_probe = {name: values[firsts] for name, values in settings.items()}
     return list(first_row), firsts, probe_of_row, per_probe
@@ -490,8 +495,8 @@ def _long_scan(table: _Table, sha256) -> Scan:
     for row in range(table.n_rows):
         p, k = probe_of_row[row], outcome[row]
         if seen_at[p, k] >= 0:
-            _refuse(table.where(row), "outcome", f"outcome {k} of probe {labels[p]!r} already given at "
-                    f"{table.where(int(seen_at[p, k]))}")
+            _refuse(table.where(row), "outcome", f"outcome {k} of probe {labels[p]!r} already given on "
+                    f"{table.place(int(seen_at[p, k]))}")
         seen_at[p, k], counts[p, k] = row, count[row]
     absent = np.argwhere(seen_at < 0)
     if absent.size:
