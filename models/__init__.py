@@ -6,6 +6,7 @@ reference plane; ``alpha`` is the complex displacement amplitude; POVMs are arra
 """
 import povmfit as _povmfit  # noqa: F401  (switches JAX to float64)
 
+from ._emulate import ResponseTable, apply_pixel_crosstalk, response_table, sample_counts, sample_outcomes, split_array_patterns, uniform_subset_patterns  # noqa: E501
 from ._families import FAMILIES, FEATURES, DetectorModel, parse_model_spec
 from ._povm import POVM
 from ._probes import (
