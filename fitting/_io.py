@@ -3,11 +3,12 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "file_sha256"]
+__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "json_safe", "file_sha256"]
 
 
 class InputError(ValueError):
@@ -36,8 +37,19 @@ def atomic_write_text(path, text: str) -> None:
     atomic_write_bytes(path, text.encode("utf-8"))
 
 
+def json_safe(value):
+    """Replace NaN and infinities by None (JSON has no such numbers), recursively."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [json_safe(v) for v in value]
+    return value
+
+
 def write_json(path, payload) -> None:
-    atomic_write_text(path, json.dumps(payload, indent=2, allow_nan=False) + "\n")
+    atomic_write_text(path, json.dumps(json_safe(payload), indent=2, allow_nan=False) + "\n")
 
 
 def file_sha256(path) -> str:

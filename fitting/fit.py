@@ -25,7 +25,7 @@ from scipy import optimize, stats
 from povmfit.models import DetectorModel, choose_cutoff
 
 from ._io import InputError
-from .objective import compiled
+from .objective import PROBABILITY_FLOOR, cell_residual_derivative, cell_residuals, compiled
 
 __all__ = ["fit_scan", "FitResult", "FitNotConverged", "CHI2_95"]
 
@@ -115,48 +115,121 @@ def _cutoff(scan, calibration_uncertainty, tolerance) -> int:
     return choose_cutoff(scan.coherent_photons * top, scan.thermal_photons * top, tolerance)
 
 
-def _bounds(model, calibrated, width):
-    bounds = model.bounds()
-    if calibrated:
-        bounds = dict(bounds, probe_scale=(max(1.0 - _SCALE_SPAN * width, 0.05), 1.0 + _SCALE_SPAN * width))
-    return bounds
+# value a switched-off feature's parameter takes inside a larger compiled model
+NULL_VALUES = {"dark_probability": 0.0, "dark_mean": 0.0, "crosstalk_probability": 0.0, "readout_width": 1e-3}
 
 
-def _starting_point(model, fns, data, calibrated):
+def _null_value(name: str) -> float:
+    return 0.0 if name.startswith("split_log_ratio") else NULL_VALUES[name]
+
+
+class _Problem:
+    """The least-squares problem of one candidate model on one scan.
+
+    The POVM is computed by ``compute_model`` (a model with the same family and size and a
+    superset of the features); parameters of features the candidate lacks are held at
+    values that switch the feature off. Only the free parameters are fitted.
+    """
+
+    def __init__(self, scan, model, compute_model, n_photons, weighting, calibration_uncertainty):
+        self.model = model
+        self.calibrated = calibration_uncertainty is not None
+        self.width = float(calibration_uncertainty) if self.calibrated else 1.0
+        self.weighting = weighting
+        self.fns = compiled(compute_model, n_photons, "deviance", self.calibrated)
+        full = list(compute_model.parameter_names) + (["probe_scale"] if self.calibrated else [])
+        self.names = tuple(model.parameter_names) + (("probe_scale",) if self.calibrated else ())
+        missing = [n for n in self.names if n not in full]
+        if missing or compute_model.family != model.family or compute_model.n_outcomes != model.n_outcomes:
+            raise ValueError(f"{compute_model.spec} cannot stand in for {model.spec}")
+        self.free_index = np.array([full.index(n) for n in self.names])
+        self.template = np.array([0.0 if n in self.names else _null_value(n) for n in full])
+        self.coherent = np.asarray(scan.coherent_photons, float)
+        self.thermal = np.asarray(scan.thermal_photons, float)
+        self.counts = np.asarray(scan.counts, float)
+        self.shots = np.asarray(scan.shots, float)
+        bounds = model.bounds()
+        if self.calibrated:
+            bounds["probe_scale"] = (max(1.0 - _SCALE_SPAN * self.width, 0.05), 1.0 + _SCALE_SPAN * self.width)
+        self.bounds = bounds
+        self.bounds_list = [bounds[n] for n in self.names]
+
+    def full_vector(self, x):
+        full = self.template.copy()
+        full[self.free_index] = x
+        return full
+
+    def _evaluate(self, x):
+        q, jac = self.fns.probabilities_and_jacobian(self.full_vector(x), self.coherent, self.thermal)
+        return np.asarray(q), np.asarray(jac)[..., self.free_index]
+
+    def probabilities(self, x):
+        return np.asarray(self.fns.probabilities(self.full_vector(x), self.coherent, self.thermal))
+
+    def residuals(self, x):
+        r = cell_residuals(self.probabilities(x), self.counts, self.shots, self.weighting).ravel()
+        if self.calibrated:
+            r = np.append(r, (x[-1] - 1.0) / self.width)
+        return r
+
+    def residuals_and_jacobian(self, x):
+        q, jac = self._evaluate(x)
+        r = cell_residuals(q, self.counts, self.shots, self.weighting)
+        dr_dq = cell_residual_derivative(q, r, self.counts, self.shots, self.weighting)
+        rjac = (dr_dq[..., None] * jac).reshape(-1, len(x))
+        r = r.ravel()
+        if self.calibrated:
+            r = np.append(r, (x[-1] - 1.0) / self.width)
+            prior_row = np.zeros(len(x))
+            prior_row[-1] = 1.0 / self.width
+            rjac = np.vstack([rjac, prior_row])
+        return r, rjac
+
+    def jacobian(self, x):
+        return self.residuals_and_jacobian(x)[1]
+
+    def deviance(self, x):
+        return float(np.sum(self.residuals(x) ** 2))
+
+    def fisher(self, x):
+        """Expected Fisher information of the multinomial counts, plus the prior."""
+        q, jac = self._evaluate(x)
+        q = np.maximum(q, PROBABILITY_FLOOR)
+        info = np.einsum("p,pki,pkj->ij", self.shots, jac / q[..., None], jac)
+        if self.calibrated:
+            info[-1, -1] += 1.0 / self.width**2
+        return info
+
+
+def _starting_point(problem):
     """Simple moments: dark level from the darkest probe, efficiency from a coarse scan of the
     deviance (other parameters at their defaults)."""
+    model = problem.model
     start = model.starting_values()
-    coherent, thermal, counts, shots, _ = data
-    darkest = int(np.argmin(coherent + thermal))
-    no_click = max(counts[darkest, 0] / shots[darkest], 1e-12)
+    total = problem.coherent + problem.thermal
+    darkest = int(np.argmin(total))
+    no_click = max(problem.counts[darkest, 0] / problem.shots[darkest], 1e-12)
     if "dark_probability" in start:
         start["dark_probability"] = float(np.clip(1.0 - no_click ** (1.0 / model.size), 1e-6, 0.5))
     if "dark_mean" in start:
         start["dark_mean"] = float(np.clip(-np.log(no_click), 1e-6, 5.0))
-    grid = np.linspace(0.02, 1.0, 50)
-    vectors = np.array([[g if n == "efficiency" else start[n] for n in model.parameter_names] for g in grid])
-    if calibrated:
-        vectors = np.column_stack([vectors, np.ones(len(grid))])
-    deviances = np.asarray(fns.batched_deviance(vectors, *data))
-    start["efficiency"] = float(grid[int(np.nanargmin(deviances))])
-    if calibrated:
+    if problem.calibrated:
         start["probe_scale"] = 1.0
+    best = None
+    for eta in np.linspace(0.02, 1.0, 50):
+        x = np.array([eta if n == "efficiency" else start[n] for n in problem.names])
+        dev = problem.deviance(x)
+        if np.isfinite(dev) and (best is None or dev < best[0]):
+            best = (dev, eta)
+    start["efficiency"] = float(best[1]) if best else 0.5
     return start
 
 
-def _wald_or_profile(name, index, x_hat, se, bounds, profile):
-    lo_b, hi_b = bounds[name]
-    lo, hi = x_hat[index] - 1.96 * se, x_hat[index] + 1.96 * se
-    if np.isfinite(se) and lo >= lo_b and hi <= hi_b:
-        return (float(lo), float(hi)), "wald"
-    return profile(index), "profile"
-
-
-def _profile_interval(fns, data, x_hat, dev_min, bounds_list, index, se):
-    """95 % profile-likelihood interval for parameter ``index``."""
+def _profile_interval(problem, x_hat, dev_min, index, se):
+    """95 % profile-likelihood interval for free parameter ``index``."""
     others = [i for i in range(len(x_hat)) if i != index]
-    lower = np.array([bounds_list[i][0] for i in others])
-    upper = np.array([bounds_list[i][1] for i in others])
+    lower = np.array([problem.bounds_list[i][0] for i in others])
+    upper = np.array([problem.bounds_list[i][1] for i in others])
 
     def profile_deviance(value):
         def full(y):
@@ -166,11 +239,11 @@ def _profile_interval(fns, data, x_hat, dev_min, bounds_list, index, se):
             return x
 
         if not others:
-            return float(fns.deviance(full([]), *data))
+            return problem.deviance(full([]))
         res = optimize.least_squares(
-            lambda y: np.asarray(fns.residuals(full(y), *data)),
+            lambda y: problem.residuals(full(y)),
             np.clip(x_hat[others], lower, upper),
-            jac=lambda y: np.asarray(fns.jacobian(full(y), *data))[:, others],
+            jac=lambda y: problem.jacobian(full(y))[:, others],
             bounds=(lower, upper),
             method="trf",
             xtol=1e-10,
@@ -179,7 +252,7 @@ def _profile_interval(fns, data, x_hat, dev_min, bounds_list, index, se):
         return float(2 * res.cost)
 
     def edge(direction):
-        bound = bounds_list[index][0 if direction < 0 else 1]
+        bound = problem.bounds_list[index][0 if direction < 0 else 1]
         step = se if np.isfinite(se) and se > 0 else abs(bound - x_hat[index])
         far = x_hat[index] + direction * 10 * step
         far = max(far, bound) if direction < 0 else min(far, bound)
@@ -187,7 +260,7 @@ def _profile_interval(fns, data, x_hat, dev_min, bounds_list, index, se):
             return float(bound)
         if profile_deviance(far) - dev_min < CHI2_95:
             return float(far)
-        return float(optimize.brentq(lambda v: profile_deviance(v) - dev_min - CHI2_95, x_hat[index], far, xtol=1e-10 + 1e-6 * step))
+        return float(optimize.brentq(lambda v: profile_deviance(v) - dev_min - CHI2_95, x_hat[index], far, xtol=1e-12 + 1e-6 * step))
 
     return edge(-1), edge(+1)
 
@@ -198,6 +271,8 @@ def fit_scan(
     calibration_uncertainty: float | None = None,
     weighting: str = "deviance",
     tolerance: float = 1e-10,
+    compute_model: DetectorModel | None = None,
+    intervals: bool = True,
 ) -> FitResult:
     """Fit ``model`` to ``scan`` by maximum likelihood (see module docstring).
 
@@ -208,43 +283,47 @@ def fit_scan(
             (e.g. 0.05 for 5 %), or None to take the probes as exact.
         weighting: "deviance" (maximum likelihood) or "pearson".
         tolerance: neglected photon-number tail mass per probe when choosing the cutoff.
+        compute_model: a model with a superset of ``model``'s features whose compiled code is
+            reused (model comparison); the extra features are switched off.
+        intervals: compute 95 % intervals (profile likelihood where needed); if False the
+            Wald intervals are reported.
     """
     if calibration_uncertainty is not None and not 0 < calibration_uncertainty < 0.5:
         raise InputError(f"--calibration-uncertainty must be between 0 and 0.5 (relative), got {calibration_uncertainty}")
+    if weighting not in ("deviance", "pearson"):
+        raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
     check_identifiable(scan, model)
-    calibrated = bool(calibration_uncertainty)
-    width = float(calibration_uncertainty) if calibrated else 1.0
+    calibration_uncertainty = calibration_uncertainty or None
     n_photons = _cutoff(scan, calibration_uncertainty, tolerance)
-    fns = compiled(model, n_photons, weighting, calibrated)
-    data = (
-        np.asarray(scan.coherent_photons, float),
-        np.asarray(scan.thermal_photons, float),
-        np.asarray(scan.counts, float),
-        np.asarray(scan.shots, float),
-        width,
-    )
-    names = model.parameter_names + (("probe_scale",) if calibrated else ())
-    bounds = _bounds(model, calibrated, width)
-    start = _starting_point(model, fns, data, calibrated)
+    problem = _Problem(scan, model, compute_model or model, n_photons, weighting, calibration_uncertainty)
+    names = problem.names
+    start = _starting_point(problem)
 
     params = lmfit.Parameters()
     for name in names:
-        lo, hi = bounds[name]
+        lo, hi = problem.bounds[name]
         params.add(name, value=float(np.clip(start[name], lo, hi)), min=lo, max=hi)
 
     def vector(p):
         return np.array([p[n].value for n in names])
 
+    cache = {}
+
+    def residuals(p):
+        x = vector(p)
+        cache["r"], cache["jac"] = problem.residuals_and_jacobian(x)
+        cache["x"] = x
+        return cache["r"]
+
+    def jacobian(p):
+        x = vector(p)
+        if "x" not in cache or not np.array_equal(cache["x"], x):
+            residuals(p)
+        return np.array(cache["jac"])
+
     result = lmfit.minimize(
-        lambda p: np.asarray(fns.residuals(vector(p), *data)),
-        params,
-        method="least_squares",
-        Dfun=lambda p: np.array(fns.jacobian(vector(p), *data)),
-        scale_covar=False,
-        xtol=1e-12,
-        ftol=1e-12,
-        gtol=1e-10,
-        max_nfev=2000,
+        residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False,
+        xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,
     )
     x_hat = vector(result.params)
     converged = bool(result.success)
@@ -252,18 +331,14 @@ def fit_scan(
     if not converged:
         warnings.warn(f"fit of {model.spec} did not converge: {message}", FitNotConverged, stacklevel=2)
 
-    deviance = float(fns.deviance(x_hat, *data))
-    if calibrated:
-        deviance_data = deviance - ((x_hat[-1] - 1.0) / width) ** 2
-    else:
-        deviance_data = deviance
-    info = np.asarray(fns.fisher(x_hat, data[0], data[1], data[3], width))
+    deviance = problem.deviance(x_hat)
+    deviance_data = deviance - (((x_hat[-1] - 1.0) / problem.width) ** 2 if problem.calibrated else 0.0)
+    info = problem.fisher(x_hat)
     covariance = _safe_inverse(info)
     n_model = len(model.parameter_names)
     stat_covariance = _safe_inverse(info[:n_model, :n_model])
     se = np.sqrt(np.clip(np.diag(covariance), 0, None))
     stat_se = np.sqrt(np.clip(np.diag(stat_covariance), 0, None))
-    bounds_list = [bounds[n] for n in names]
 
     values, stderr, stat_stderr, cal_stderr, ci95, ci_method = {}, {}, {}, {}, {}, {}
     for i, name in enumerate(names):
@@ -275,17 +350,18 @@ def fit_scan(
         else:
             stat_stderr[name] = 0.0
             cal_stderr[name] = float(se[i])
-        ci95[name], ci_method[name] = _wald_or_profile(
-            name, i, x_hat, se[i], bounds,
-            lambda idx: _profile_interval(fns, data, x_hat, deviance, bounds_list, idx, se[idx]),
-        )
+        lo_b, hi_b = problem.bounds[name]
+        wald = (float(x_hat[i] - 1.96 * se[i]), float(x_hat[i] + 1.96 * se[i]))
+        if not intervals or (np.isfinite(se[i]) and wald[0] >= lo_b and wald[1] <= hi_b):
+            ci95[name], ci_method[name] = wald, "wald"
+        else:
+            ci95[name], ci_method[name] = _profile_interval(problem, x_hat, deviance, i, se[i]), "profile"
 
     scale = np.sqrt(np.outer(np.diag(covariance), np.diag(covariance)))
     with np.errstate(invalid="ignore", divide="ignore"):
         correlation = np.where(scale > 0, covariance / scale, 0.0)
     dof = int(scan.n_probes * (scan.n_outcomes - 1) - n_model)
     p_value = float(stats.chi2.sf(deviance_data, dof)) if dof > 0 else float("nan")
-    predicted = np.asarray(fns.probabilities(x_hat, data[0], data[1]))
     return FitResult(
         model=model,
         names=names,
@@ -298,14 +374,14 @@ def fit_scan(
         covariance=covariance,
         stat_covariance=stat_covariance,
         correlation=correlation,
-        deviance=deviance_data,
+        deviance=float(deviance_data),
         dof=dof,
         p_value=p_value,
         n_photons=n_photons,
-        predicted=predicted,
+        predicted=problem.probabilities(x_hat),
         converged=converged,
         message=message,
-        calibration_uncertainty=calibration_uncertainty if calibrated else None,
+        calibration_uncertainty=calibration_uncertainty,
         weighting=weighting,
     )
 

@@ -21,10 +21,11 @@ from functools import lru_cache
 
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from povmfit.models import DetectorModel, probe_distributions
 
-__all__ = ["predicted_probabilities", "compiled", "PROBABILITY_FLOOR"]
+__all__ = ["predicted_probabilities", "compiled", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative"]
 
 PROBABILITY_FLOOR = 1e-300
 
@@ -89,6 +90,11 @@ class _Compiled:
                 info = info.at[n_model, n_model].add(1.0 / prior_width**2)
             return info
 
+        def probabilities_and_jacobian(x, coherent, thermal):
+            jac = jax.jacfwd(probabilities)(x, coherent, thermal)
+            return probabilities(x, coherent, thermal), jac
+
+        self.probabilities_and_jacobian = jax.jit(probabilities_and_jacobian)
         self.probabilities = jax.jit(probabilities)
         self.probability_jacobian = jax.jit(jax.jacfwd(probabilities))
         self.residuals = jax.jit(residuals)
@@ -104,3 +110,30 @@ def compiled(model: DetectorModel, n_photons: int, weighting: str = "deviance", 
     if weighting not in ("deviance", "pearson"):
         raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
     return _Compiled(model, n_photons, weighting, calibrated)
+
+
+def cell_residuals(q, counts, shots, weighting: str = "deviance") -> np.ndarray:
+    """Numpy twin of the residuals above, shape (n_probes, n_outcomes)."""
+    expected = shots[:, None] * np.maximum(q, PROBABILITY_FLOOR)
+    difference = counts - expected
+    if weighting == "pearson":
+        return difference / np.sqrt(expected)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_term = np.where(counts > 0, counts * np.log(np.where(counts > 0, counts, 1.0) / expected), 0.0)
+    cell = np.maximum(2.0 * (log_term - difference), 0.0)
+    small = np.abs(difference) < 1e-6 * expected
+    return np.where(small, difference / np.sqrt(expected), np.sign(difference) * np.sqrt(cell))
+
+
+def cell_residual_derivative(q, residuals, counts, shots, weighting: str = "deviance") -> np.ndarray:
+    """d r / d q for every cell (r depends on its own q only), shape (n_probes, n_outcomes)."""
+    expected = shots[:, None] * np.maximum(q, PROBABILITY_FLOOR)
+    difference = counts - expected
+    if weighting == "pearson":
+        # r = (o - e) e^(-1/2): dr/de = -e^(-1/2) - (o - e) e^(-3/2) / 2
+        dr_de = -1.0 / np.sqrt(expected) - 0.5 * difference / expected**1.5
+    else:
+        small = np.abs(difference) < 1e-6 * expected
+        safe_r = np.where(small, 1.0, residuals)
+        dr_de = np.where(small, -1.0 / np.sqrt(expected), -(difference / expected) / safe_r)
+    return dr_de * shots[:, None]
