@@ -1,0 +1,113 @@
+"""The ``emulate`` and ``simulate`` commands: output format, refusals (exit 2, nothing written)."""
+from __future__ import annotations
+
+import io
+import json
+from contextlib import redirect_stderr, redirect_stdout
+
+import numpy as np
+import pytest
+
+from povmfit.fitting.cli import build_parser, main
+from povmfit.fitting.cmd_simulate import parse_probe_grid
+from povmfit.fitting.detector_file import DetectorRecord, save_detector
+from povmfit.fitting.emulator import Emulator
+from povmfit.fitting.scan import load_scan
+from povmfit.models import parse_model_spec
+
+
+@pytest.fixture()
+def detector(tmp_path):
+    model = parse_model_spec("array:4+dark")
+    record = DetectorRecord(model, {"efficiency": 0.7, "dark_probability": 0.02}, np.diag([1e-4, 1e-6]), None, {})
+    path = tmp_path / "detector.json"
+    save_detector(record, path)
+    return path
+
+
+def _run(argv):
+    out, err = io.StringIO(), io.StringIO()
+    with redirect_stdout(out), redirect_stderr(err):
+        code = main([str(a) for a in argv])
+    return code, out.getvalue(), err.getvalue()
+
+
+def test_emulate_prints_outcome_count_probability(detector):
+    code, out, err = _run(["emulate", detector, "--input", "coherent:2.0", "--shots", 5000, "--seed", 3])
+    assert code == 0 and err == ""
+    lines = out.strip().splitlines()
+    assert lines[0] == "outcome,count,probability"
+    rows = [line.split(",") for line in lines[1:]]
+    assert [int(r[0]) for r in rows] == list(range(5))
+    assert sum(int(r[1]) for r in rows) == 5000
+    expected = Emulator.from_detector_file(detector).probabilities("coherent:2.0")
+    np.testing.assert_array_equal([float(r[2]) for r in rows], expected)  # full precision text
+    assert _run(["emulate", detector, "--input", "coherent:2.0", "--shots", 5000, "--seed", 3])[1] == out
+
+
+def test_emulate_ensemble_and_out_file(detector, tmp_path):
+    target = tmp_path / "sub" / "out.csv"
+    code, out, _ = _run(["emulate", detector, "--input", "fock:2", "--ensemble", 30, "--seed", 1, "--out", target])
+    assert code == 0 and out == ""
+    rows = [line.split(",") for line in target.read_text().strip().splitlines()[1:]]
+    members = Emulator.from_detector_file(detector).ensemble(30, seed=1).member_probabilities("fock:2")
+    np.testing.assert_allclose([float(r[2]) for r in rows], members.mean(axis=0), rtol=1e-12)
+    assert sum(int(r[1]) for r in rows) == 10000  # default shots
+
+
+@pytest.mark.parametrize(
+    "extra", [["--input", "coherent:x"], ["--shots", "-1"], ["--ensemble", "0"], ["--input", "missing.csv"]]
+)
+def test_emulate_refusals_exit_2_and_write_nothing(detector, tmp_path, extra):
+    target = tmp_path / "never.csv"
+    code, out, err = _run(["emulate", detector, *extra, "--out", target])
+    assert code == 2 and out == "" and not target.exists()
+    assert err.count("\n") == 1 and "error" in err
+
+
+def test_emulate_refuses_newer_detector_file(detector):
+    data = json.loads(detector.read_text())
+    data["schema"] = "povmfit.detector/7"
+    detector.write_text(json.dumps(data))
+    code, _, err = _run(["emulate", detector])
+    assert code == 2 and "povmfit.detector/7" in err and err.count("\n") == 1
+
+
+def test_probe_grid_syntax():
+    coherent, thermal = parse_probe_grid("coherent=0:4:21;thermal=0,0.5,1")
+    assert coherent.size == 63
+    np.testing.assert_allclose(np.unique(coherent), np.linspace(0, 4, 21))
+    np.testing.assert_array_equal(np.unique(thermal), [0, 0.5, 1])
+    coherent, thermal = parse_probe_grid("coherent=0:4:9|thermal=0.5,1")
+    assert coherent.size == 11 and np.count_nonzero(thermal) == 2
+
+
+def test_simulate_writes_a_scan_that_loads(detector, tmp_path):
+    target = tmp_path / "synthetic.csv"
+    code, _, err = _run(["simulate", detector, "--probes", "coherent=0:3:4;thermal=0,0.5", "--shots", 2000, "--seed", 2, "-o", target])
+    assert code == 0, err
+    scan = load_scan(target)
+    assert scan.n_probes == 8 and scan.n_outcomes == 5
+    assert np.all(np.asarray(scan.shots) == 2000)
+
+
+def test_simulate_reads_a_probe_file(detector, tmp_path):
+    probes = tmp_path / "probes.csv"
+    probes.write_text("coherent_photons,thermal_photons,probe\n0,0,dark\n1.5,0,weak\n0,0.8,warm\n")
+    target = tmp_path / "s.parquet"
+    assert _run(["simulate", detector, "--probes", probes, "--shots", 100, "-o", target])[0] == 0
+    assert load_scan(target).n_probes == 3
+
+
+@pytest.mark.parametrize("grid", ["coherent=1:2", "photons=1,2", "coherent=-1", "coherent=1;coherent=2", ""])
+def test_simulate_refuses_bad_grids(detector, tmp_path, grid):
+    target = tmp_path / "s.csv"
+    code, _, err = _run(["simulate", detector, "--probes", grid, "--shots", 10, "-o", target])
+    assert code == 2 and not target.exists() and err.count("\n") == 1
+
+
+def test_help_texts_carry_examples():
+    parser = build_parser()
+    actions = {a.dest: a for a in parser._actions}["verb"].choices
+    for verb in ("emulate", "simulate"):
+        assert f"povmfit {verb} " in actions[verb].format_help()
