@@ -254,13 +254,18 @@ def _profile_interval(problem, x_hat, dev_min, index, se):
     def edge(direction):
         bound = problem.bounds_list[index][0 if direction < 0 else 1]
         step = se if np.isfinite(se) and se > 0 else abs(bound - x_hat[index])
-        far = x_hat[index] + direction * 10 * step
-        far = max(far, bound) if direction < 0 else min(far, bound)
-        if abs(far - x_hat[index]) < 1e-15:
-            return float(bound)
-        if profile_deviance(far) - dev_min < CHI2_95:
-            return float(far)
-        return float(optimize.brentq(lambda v: profile_deviance(v) - dev_min - CHI2_95, x_hat[index], far, xtol=1e-12 + 1e-6 * step))
+        near = x_hat[index]
+        while True:  # widen the bracket tenfold until the deviance has risen enough or the bound is met
+            far = x_hat[index] + direction * 10 * step
+            far = max(far, bound) if direction < 0 else min(far, bound)
+            if abs(far - x_hat[index]) < 1e-15:
+                return float(bound)
+            if profile_deviance(far) - dev_min >= CHI2_95:
+                break
+            if far == bound:
+                return float(bound)
+            near, step = far, step * 10
+        return float(optimize.brentq(lambda v: profile_deviance(v) - dev_min - CHI2_95, near, far, xtol=1e-12 + 1e-6 * step))
 
     return edge(-1), edge(+1)
 
