@@ -31,6 +31,7 @@ from ._stages import (
     uniform_pixel_matrix,
 )
 from ._wigner import fock_wigner_table, povm_wigner, saturating_wigner
+from ._banded import BandedProbeMatrix, banded_probe_distributions  # noqa: F401
 
 __all__ = [
     "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
