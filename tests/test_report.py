@@ -1,0 +1,174 @@
+"""The fit report: a self-contained HTML page with every section, plots on disk, escaped
+text, and a page that a real headless browser renders into a non-trivial picture."""
+from __future__ import annotations
+
+import importlib.util
+import re
+import shutil
+import subprocess
+import types
+
+import numpy as np
+import pytest
+
+from povmfit.models import parse_model_spec, probe_distributions
+
+HEADINGS = ("Figures", "Model verdict", "Outcome probabilities", "Residuals", "POVM",
+            "Wigner functions", "Cross-check", "Provenance")
+TRUE = {"efficiency": 0.6, "dark_probability": 0.01}  # invented test detector
+PIPELINE_MODULES = ("povmfit.fitting.cross_check", "povmfit.fitting.pointwise_wigner", "povmfit.fitting.cmd_reconstruct")
+
+
+def simulated_counts(seed: int = 7):
+    """Counts of array:4+dark for coherent probes plus displaced-thermal probes at alpha = 0
+    and alpha = 1 (two or more thermal levels each, as the pointwise Wigner method needs)."""
+    model = parse_model_spec("array:4+dark")
+    coherent = np.array([0.0, 0.05, 0.1, 0.2, 0.5, 1.0, 2.0, 4.0, 8.0, 0.0, 0.0, 0.0, 1.0, 1.0, 1.0])
+    thermal = np.array([0.0] * 9 + [0.2, 0.5, 1.0, 0.0, 0.3, 0.8])
+    n = 80
+    theta = np.asarray(model.povm(model.pack(TRUE), n))
+    q = np.asarray(probe_distributions(coherent, thermal, n)) @ theta.T
+    rng = np.random.default_rng(seed)
+    counts = rng.multinomial(20_000, q / q.sum(axis=1, keepdims=True))
+    return coherent, thermal, counts
+
+
+def write_scan_csv(path, label_of_first="dark"):
+    coherent, thermal, counts = simulated_counts()
+    lines = ["probe,coherent_photons,thermal_photons,shots," + ",".join(f"count_{k}" for k in range(counts.shape[1]))]
+    for i, (a, t, row) in enumerate(zip(coherent, thermal, counts)):
+        label = label_of_first if i == 0 else f"p{i}"
+        lines.append(f"{label},{float(a)!r},{float(t)!r},{row.sum()}," + ",".join(str(int(c)) for c in row))
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def report_inputs(scan_path):
+    """The arguments of write_report built from the committed stages (no pipeline)."""
+    from povmfit.fitting.compare import compare_models
+    from povmfit.fitting.datasheet import datasheet_document
+    from povmfit.fitting.pipeline import model_povm_with_errors
+    from povmfit.fitting.reconstruct import reconstruct_povm
+    from povmfit.fitting.scan import load_scan
+
+    scan = load_scan(scan_path)
+    comparison = compare_models(scan, ["array:4", "array:4+dark"], cv_folds=0)
+    result = comparison.fits[comparison.chosen.spec]
+    recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4], quiet=True)
+    theta, se = model_povm_with_errors(result, recon.n_photons)
+    summary = {"verdict": "test verdict <b>not bold</b>", "povm": {"max_abs_z": 1.5, "agrees": True}}
+    sheet = datasheet_document(scan, result, options={"model": "auto", "note": "<script>alert(1)</script>"},
+                               comparison=comparison.to_dict(), verdict=comparison.verdict, cross_check=summary)
+    cross = {"summary": summary, "reconstruction": recon, "pointwise": None, "smoothed": None,
+             "model_theta": theta, "model_stderr": se}
+    return scan, result, sheet, comparison, cross
+
+
+@pytest.fixture(scope="module")
+def direct_report(tmp_path_factory):
+    """A report written by write_report from parts, with hostile text in label and options."""
+    from povmfit.fitting.report import write_report
+
+    folder = tmp_path_factory.mktemp("direct")
+    scan_path = write_scan_csv(folder / "scan.csv", label_of_first="<i>dark</i>")
+    return write_report(folder / "out", *report_inputs(scan_path))
+
+
+def check_page(page: str):
+    for heading in HEADINGS:
+        assert f"<h2>{heading}</h2>" in page, heading
+    assert len(re.findall(r"<img src=\"data:image/png;base64,", page)) >= 4
+    assert not re.search(r"https?://", page), "the report must not reference the network"
+    assert "Re(alpha)" in page and "q = sqrt(2) Re(alpha)" in page
+    for column in ("dAIC", "dBIC", "weight", "CV"):
+        assert f"<th>{column}</th>" in page
+
+
+def test_write_report_directly_escapes_text_and_writes_plots(direct_report):
+    files = direct_report
+    page = files["report"].read_text()
+    check_page(page)
+    assert "<script>" not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
+    assert "&lt;b&gt;not bold&lt;/b&gt;" in page
+    assert "probe photon numbers taken as exact" in page  # the calibration note (no --calibration-uncertainty)
+    for name in ("outcome_probabilities", "residuals", "povm", "wigner"):
+        png, svg = files[f"plot_{name}_png"], files[f"plot_{name}_svg"]
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.parent.name == "plots"
+        assert b"<svg" in svg.read_bytes()[:2000]
+    assert not list(files["report"].parent.rglob("*.tmp")), "atomic writes leave no temporary files"
+
+
+def test_standardised_residuals_and_wilson_interval():
+    from povmfit.fitting.report import standardised_residuals, wilson_interval
+
+    scan = types.SimpleNamespace(shots=np.array([100]), counts=np.array([[60, 40]]))
+    z = standardised_residuals(scan, np.array([[0.5, 0.5]]))
+    np.testing.assert_allclose(z, [[2.0, -2.0]])  # (60 - 50)/sqrt(100*0.25) = 2, by hand
+    lo, hi = wilson_interval(0, 100)
+    # Wilson 1927 at z = 1: upper end for 0 successes is 1/(n + 1) (common practice, by hand)
+    assert lo == 0.0 and hi == pytest.approx(1 / 101)
+
+
+def test_wigner_rows_are_rotated_onto_the_real_axis(tmp_path):
+    from povmfit.fitting.report import _read_wigner_rows, _wigner_series
+
+    (tmp_path / "wigner.csv").write_text(
+        "re_alpha,im_alpha,outcome,value,stderr,source\n"
+        "-0.6,0.0,0,0.1,0.01,pointwise\n0.0,0.8,0,0.2,0.02,pointwise\n0.3,0.4,1,0.3,,pointwise\n"
+        "0.5,0.0,0,0.25,,smoothed\n0.5,0.5,0,0.9,,smoothed\n"
+    )
+    rows = _read_wigner_rows(tmp_path / "wigner.csv")
+    points = _wigner_series(rows, "pointwise", 2, real_axis_only=False)
+    # phase insensitivity: alpha is drawn at sign(Re alpha) |alpha| (|0.3+0.4i| = 0.5, by hand)
+    np.testing.assert_allclose(points[0]["re_alpha"], [-0.6, 0.8])
+    np.testing.assert_allclose(points[1]["re_alpha"], [0.5])
+    np.testing.assert_allclose(points[1]["stderr"], [0.0])  # empty stderr cell drawn without a bar
+    smoothed = _wigner_series(rows, "smoothed", 2, real_axis_only=True)
+    np.testing.assert_allclose(smoothed[0]["value"], [0.25])  # only the Im(alpha) = 0 row is kept
+
+
+def _chromium():
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def _screenshot(page_path, png_path, profile):
+    browser = _chromium()
+    command = [browser, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+               f"--user-data-dir={profile}", f"--screenshot={png_path}", "--window-size=1200,3000",
+               page_path.resolve().as_uri()]
+    subprocess.run(command, check=True, capture_output=True, timeout=120)
+
+
+def _check_screenshot(page_path, tmp_path):
+    if _chromium() is None:
+        pytest.skip("no chromium installed: the headless-browser rendering check was not run")
+    shot = tmp_path / "shot.png"
+    _screenshot(page_path, shot, tmp_path / "profile")
+    import matplotlib.image
+
+    assert shot.stat().st_size > 50_000  # a rendered page of tables and plots, not a blank one
+    pixels = matplotlib.image.imread(shot)[..., :3]
+    assert pixels.shape[0] >= 2000 and pixels.shape[1] >= 1000
+    colours = np.unique((pixels * 255).astype(np.uint8).reshape(-1, 3), axis=0)
+    assert len(colours) > 50, "screenshot is (nearly) one colour"
+    assert (pixels.std(axis=1) > 0.01).mean() > 0.3, "most rows of the page carry content"
+
+
+def test_report_renders_in_headless_browser(direct_report, tmp_path):
+    _check_screenshot(direct_report["report"], tmp_path)
+
+
+def test_fit_command_writes_report_that_renders(tmp_path):
+    from povmfit.fitting.cli import main
+
+    missing = [m for m in PIPELINE_MODULES if importlib.util.find_spec(m) is None]
+    if missing:
+        pytest.skip(f"the fit pipeline cannot run yet: missing {', '.join(missing)}")
+    scan_path = write_scan_csv(tmp_path / "scan.csv")
+    out = tmp_path / "result"
+    assert main(["fit", str(scan_path), "--out", str(out), "--model", "array:4+dark", "--quiet"]) == 0
+    page_path = out / "report.html"
+    check_page(page_path.read_text())
+    assert (out / "plots" / "wigner.svg").is_file()
+    _check_screenshot(page_path, tmp_path)
