@@ -9,6 +9,7 @@ statistical uncertainty.
 from __future__ import annotations
 
 import sys
+from functools import lru_cache
 
 import jax
 import jax.numpy as jnp
@@ -24,15 +25,17 @@ _CHUNK = 250
 
 def _refit_function(fns, lower, upper):
     def refit(x0, coherent, thermal, counts, shots, width):
+        def residuals(x):
+            return fns.residuals(x, coherent, thermal, counts, shots, width)
+
         def body(_, state):
             x, damping = state
-            r = fns.residuals(x, coherent, thermal, counts, shots, width)
-            jac = jax.jacfwd(fns.residuals)(x, coherent, thermal, counts, shots, width)
+            jac, r = jax.jacfwd(lambda y: (residuals(y),) * 2, has_aux=True)(x)  # one trace for both
             hess = jac.T @ jac
             grad = jac.T @ r
             step = jnp.linalg.solve(hess + damping * jnp.diag(jnp.diag(hess) + 1e-12), grad)
             trial = jnp.clip(x - step, lower, upper)
-            better = jnp.sum(fns.residuals(trial, coherent, thermal, counts, shots, width) ** 2) <= jnp.sum(r**2)
+            better = jnp.sum(residuals(trial) ** 2) <= jnp.sum(r**2)
             return jnp.where(better, trial, x), jnp.where(better, damping * 0.3, damping * 10.0)
 
         x, _ = jax.lax.fori_loop(0, _ITERATIONS, body, (x0, 1e-3))
@@ -42,7 +45,15 @@ def _refit_function(fns, lower, upper):
 
 
 def batched_refit(fns, lower, upper):
-    """jit(vmap(refit)) over count tables: (x0, coherent, thermal, counts[b], shots, width)."""
+    """jit(vmap(refit)) over count tables: (x0, coherent, thermal, counts[b], shots, width).
+
+    Cached per compiled model and bounds, so later bootstraps of the same model reuse the
+    compiled code."""
+    return _batched_refit(fns, tuple(float(v) for v in lower), tuple(float(v) for v in upper))
+
+
+@lru_cache(maxsize=32)
+def _batched_refit(fns, lower: tuple, upper: tuple):
     refit = _refit_function(fns, jnp.asarray(lower), jnp.asarray(upper))
     return jax.jit(jax.vmap(refit, in_axes=(None, None, None, 0, None, None)))
 

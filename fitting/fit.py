@@ -131,7 +131,7 @@ class _Problem:
     values that switch the feature off. Only the free parameters are fitted.
     """
 
-    def __init__(self, scan, model, compute_model, n_photons, weighting, calibration_uncertainty):
+    def __init__(self, scan, model, compute_model, n_photons, weighting, calibration_uncertainty, active=None):
         self.model = model
         self.calibrated = calibration_uncertainty is not None
         self.width = float(calibration_uncertainty) if self.calibrated else 1.0
@@ -146,8 +146,11 @@ class _Problem:
         self.template = np.array([0.0 if n in self.names else _null_value(n) for n in full])
         self.coherent = np.asarray(scan.coherent_photons, float)
         self.thermal = np.asarray(scan.thermal_photons, float)
-        self.counts = np.asarray(scan.counts, float)
-        self.shots = np.asarray(scan.shots, float)
+        # probes outside ``active`` are predicted but not fitted (cross-validation keeps the
+        # compiled shapes of the whole scan)
+        self.active = np.ones(scan.n_probes, bool) if active is None else np.asarray(active, bool)
+        self.counts = np.asarray(scan.counts, float)[self.active]
+        self.shots = np.asarray(scan.shots, float)[self.active]
         bounds = model.bounds()
         if self.calibrated:
             bounds["probe_scale"] = (max(1.0 - _SCALE_SPAN * self.width, 0.05), 1.0 + _SCALE_SPAN * self.width)
@@ -161,10 +164,14 @@ class _Problem:
 
     def _evaluate(self, x):
         q, jac = self.fns.probabilities_and_jacobian(self.full_vector(x), self.coherent, self.thermal)
-        return np.asarray(q), np.asarray(jac)[..., self.free_index]
+        return np.asarray(q)[self.active], np.asarray(jac)[self.active][..., self.free_index]
+
+    def all_probabilities(self, x):
+        """q[p, k] for every probe of the scan, fitted or not."""
+        return np.asarray(self.fns.probabilities(self.full_vector(x), self.coherent, self.thermal))
 
     def probabilities(self, x):
-        return np.asarray(self.fns.probabilities(self.full_vector(x), self.coherent, self.thermal))
+        return self.all_probabilities(x)[self.active]
 
     def residuals(self, x):
         r = cell_residuals(self.probabilities(x), self.counts, self.shots, self.weighting).ravel()
@@ -206,7 +213,7 @@ def _starting_point(problem):
     deviance (other parameters at their defaults)."""
     model = problem.model
     start = model.starting_values()
-    total = problem.coherent + problem.thermal
+    total = (problem.coherent + problem.thermal)[problem.active]
     darkest = int(np.argmin(total))
     no_click = max(problem.counts[darkest, 0] / problem.shots[darkest], 1e-12)
     if "dark_probability" in start:
@@ -215,12 +222,18 @@ def _starting_point(problem):
         start["dark_mean"] = float(np.clip(-np.log(no_click), 1e-6, 5.0))
     if problem.calibrated:
         start["probe_scale"] = 1.0
-    best = None
-    for eta in np.linspace(0.02, 1.0, 50):
-        x = np.array([eta if n == "efficiency" else start[n] for n in problem.names])
-        dev = problem.deviance(x)
-        if np.isfinite(dev) and (best is None or dev < best[0]):
-            best = (dev, eta)
+    def best_of(grid, best):
+        for eta in grid:
+            x = np.array([eta if n == "efficiency" else start[n] for n in problem.names])
+            dev = problem.deviance(x)
+            if np.isfinite(dev) and (best is None or dev < best[0]):
+                best = (dev, eta)
+        return best
+
+    # coarse grid (step 0.098), then a finer one (step 0.0245) around its best point
+    best = best_of(np.linspace(0.02, 1.0, 11), None)
+    if best:
+        best = best_of(np.clip(best[1] + 0.0245 * np.array([-3, -2, -1, 1, 2, 3]), 1e-3, 1.0), best)
     start["efficiency"] = float(best[1]) if best else 0.5
     return start
 
@@ -278,6 +291,7 @@ def fit_scan(
     tolerance: float = 1e-10,
     compute_model: DetectorModel | None = None,
     intervals: bool = True,
+    probe_mask=None,
 ) -> FitResult:
     """Fit ``model`` to ``scan`` by maximum likelihood (see module docstring).
 
@@ -292,15 +306,17 @@ def fit_scan(
             reused (model comparison); the extra features are switched off.
         intervals: compute 95 % intervals (profile likelihood where needed); if False the
             Wald intervals are reported.
+        probe_mask: boolean array selecting the probes to fit (default all); the others are
+            still predicted (``FitResult.predicted`` covers every probe).
     """
     if calibration_uncertainty is not None and not 0 < calibration_uncertainty < 0.5:
         raise InputError(f"--calibration-uncertainty must be between 0 and 0.5 (relative), got {calibration_uncertainty}")
     if weighting not in ("deviance", "pearson"):
         raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
-    check_identifiable(scan, model)
+    check_identifiable(scan if probe_mask is None else scan.subset(np.asarray(probe_mask, bool)), model)
     calibration_uncertainty = calibration_uncertainty or None
     n_photons = _cutoff(scan, calibration_uncertainty, tolerance)
-    problem = _Problem(scan, model, compute_model or model, n_photons, weighting, calibration_uncertainty)
+    problem = _Problem(scan, model, compute_model or model, n_photons, weighting, calibration_uncertainty, probe_mask)
     names = problem.names
     start = _starting_point(problem)
 
@@ -327,7 +343,7 @@ def fit_scan(
         return np.array(cache["jac"])
 
     result = lmfit.minimize(
-        residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False,
+        residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False, calc_covar=False,
         xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,
     )
     x_hat = vector(result.params)
@@ -365,7 +381,7 @@ def fit_scan(
     scale = np.sqrt(np.outer(np.diag(covariance), np.diag(covariance)))
     with np.errstate(invalid="ignore", divide="ignore"):
         correlation = np.where(scale > 0, covariance / scale, 0.0)
-    dof = int(scan.n_probes * (scan.n_outcomes - 1) - n_model)
+    dof = int(problem.active.sum() * (scan.n_outcomes - 1) - n_model)
     p_value = float(stats.chi2.sf(deviance_data, dof)) if dof > 0 else float("nan")
     return FitResult(
         model=model,
@@ -383,7 +399,7 @@ def fit_scan(
         dof=dof,
         p_value=p_value,
         n_photons=n_photons,
-        predicted=problem.probabilities(x_hat),
+        predicted=problem.all_probabilities(x_hat),
         converged=converged,
         message=message,
         calibration_uncertainty=calibration_uncertainty,
