@@ -357,7 +357,7 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
             "of the displacement, the horizontal axis is Re(alpha) at Im(alpha) = 0, and the quadrature is "
             "q = sqrt(2) Re(alpha). Normalisation: the identity has W = 1/pi. Line: model; "
             + ("points: pointwise values from displaced-thermal probes (phase insensitive, so drawn at +-|alpha|); dashed: smoothed."
-               if has_points else "no pointwise values: the scan has no displacement probed at two or more thermal levels.")))),
+               if has_points else "no pointwise values were computed (they need displacements probed at two or more thermal levels).")))),
         ("Cross-check", _cross_section(cross.get("summary"))),
         ("Provenance", _provenance_section(sheet, scan)),
     ]
