@@ -168,7 +168,9 @@ class _Problem:
 
     def all_probabilities(self, x):
         """q[p, k] for every probe of the scan, fitted or not."""
-        return np.asarray(self.fns.probabilities(self.full_vector(x), self.coherent, self.thermal))
+        # the probability+Jacobian function is the one compiled: reuse it rather than compile twice
+        q, _ = self.fns.probabilities_and_jacobian(self.full_vector(x), self.coherent, self.thermal)
+        return np.asarray(q)
 
     def probabilities(self, x):
         return self.all_probabilities(x)[self.active]
@@ -342,10 +344,11 @@ def fit_scan(
             residuals(p)
         return np.array(cache["jac"])
 
-    result = lmfit.minimize(
-        residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False, calc_covar=False,
-        xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,
-    )
+    with np.errstate(invalid="ignore"):  # lmfit's own covariance (unused) may take sqrt of < 0
+        result = lmfit.minimize(
+            residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False, calc_covar=False,
+            xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,
+        )
     x_hat = vector(result.params)
     converged = bool(result.success)
     message = str(result.message)

@@ -1,0 +1,180 @@
+"""The main job, one way through: scan -> model ranking -> fit -> cross-check -> outputs.
+
+Everything that can refuse the input (loading, options, identifiability) happens before the
+first file is written; every file is written atomically.
+"""
+from __future__ import annotations
+
+import sys
+import warnings
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+import povmfit
+from povmfit.models import parse_model_spec, povm_wigner
+
+from ._io import InputError, atomic_write_text, write_json
+from .compare import _compute_model, candidate_models, compare_models
+from .datasheet import datasheet_document
+from .detector_file import DetectorRecord, save_detector
+from .fit import FitNotConverged, fit_scan
+from .scan import load_scan
+
+__all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cache"]
+
+
+def enable_compilation_cache() -> None:
+    """Keep JAX's compiled code in the user cache folder across runs."""
+    import os
+
+    base = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "povmfit" / "jax"
+    try:
+        base.mkdir(parents=True, exist_ok=True)
+    except OSError:
+        return
+    jax.config.update("jax_compilation_cache_dir", str(base))
+    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
+    jax.config.update("jax_persistent_cache_min_entry_size_bytes", -1)
+
+
+def _parse_model_option(text: str):
+    try:
+        return parse_model_spec(text)
+    except ValueError as error:
+        raise InputError(f"--model: {error}") from None
+
+
+def model_povm_with_errors(result, n_photons: int):
+    """Model POVM theta[k, n] and its delta-method standard errors (combined covariance)."""
+    model = result.model
+    x = jnp.asarray(result.parameter_vector)
+    theta = np.asarray(model.povm(x, n_photons))
+    jac = np.asarray(jax.jacfwd(model.povm)(x, n_photons))  # (k, n, params)
+    n_model = len(model.parameter_names)
+    cov = result.covariance[:n_model, :n_model]
+    var = np.einsum("kni,ij,knj->kn", jac, cov, jac)
+    return theta, np.sqrt(np.clip(var, 0, None))
+
+
+def _select_model(scan, args):
+    if args.model != "auto":
+        if args.candidates:
+            raise InputError("--candidates is only used with --model auto")
+        return _parse_model_option(args.model), None
+    candidates = None
+    if args.candidates:
+        candidates = [_parse_model_option(c) for c in args.candidates.split(",") if c.strip()]
+    else:
+        candidates = candidate_models(scan.n_outcomes)
+    comparison = compare_models(
+        scan, candidates, args.calibration_uncertainty, seed=args.seed, quiet=args.quiet or args.json
+    )
+    return comparison.chosen, comparison
+
+
+def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
+    """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict."""
+    scan = load_scan(scan_path)
+    model, comparison = _select_model(scan, args)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FitNotConverged)
+        result = fit_scan(scan, model, args.calibration_uncertainty, args.weighting,
+                          compute_model=_compute_model(model) if comparison else None)
+    for warning in caught:
+        print(f"povmfit: warning: {warning.message}", file=sys.stderr)
+    if args.bootstrap:
+        from .bootstrap import parametric_bootstrap
+
+        boot = parametric_bootstrap(scan, result, args.bootstrap, args.seed, quiet=args.quiet or args.json)
+        boot.pop("estimates")
+        object.__setattr__(result, "bootstrap", boot)
+
+    cross = _cross_check_section(scan, result, args)
+    options = {
+        "model": args.model,
+        "candidates": args.candidates,
+        "calibration_uncertainty": args.calibration_uncertainty,
+        "gate_duration_s": args.gate_duration,
+        "weighting": args.weighting,
+        "bootstrap": args.bootstrap,
+        "seed": args.seed,
+    }
+    sheet = datasheet_document(
+        scan, result, options=options, gate_duration_s=args.gate_duration,
+        comparison=comparison.to_dict() if comparison else _single_row(result),
+        verdict=comparison.verdict if comparison else f"{model.spec} fitted as requested (no model comparison).",
+        cross_check=cross["summary"],
+    )
+    if comparison:
+        sheet["likelihood_ratio_tests"] = comparison.tests
+    record = DetectorRecord(
+        model=model,
+        parameters={n: result.values[n] for n in model.parameter_names},
+        covariance=result.covariance[: len(model.parameter_names), : len(model.parameter_names)],
+        gate_duration_s=args.gate_duration,
+        provenance={
+            "software": f"povmfit {povmfit.__version__}",
+            "input_file": str(scan.source),
+            "input_sha256": scan.sha256,
+            "options": options,
+        },
+        bounds=model.bounds(),
+    )
+
+    out_dir = Path(out_dir)
+    files = {}
+    files["datasheet"] = out_dir / "datasheet.json"
+    write_json(files["datasheet"], sheet)
+    files["detector"] = out_dir / "detector.json"
+    save_detector(record, files["detector"])
+    files.update(cross["write"](out_dir))
+    if not getattr(args, "no_report", False):
+        from .report import write_report
+
+        files.update(write_report(out_dir, scan, result, sheet, comparison, cross))
+    return {"datasheet": sheet, "result": result, "comparison": comparison, "files": files}
+
+
+def _single_row(result) -> list:
+    k = len(result.model.parameter_names)
+    return [{
+        "model": result.model.spec, "parameters": k, "deviance": result.deviance, "dof": result.dof,
+        "p_value": result.p_value, "aic": result.deviance + 2 * k, "bic": None,
+        "delta_aic": 0.0, "delta_bic": 0.0, "weight": 1.0,
+    }]
+
+
+def _cross_check_section(scan, result, args) -> dict:
+    """Model-free reconstructions of the same scan and their comparison with the fit."""
+    from .cross_check import cross_check
+    from .pointwise_wigner import pointwise_wigner, smoothed_wigner
+    from .reconstruct import reconstruct_povm
+    from .cmd_reconstruct import write_reconstruction_csvs
+
+    quiet = args.quiet or args.json
+    reconstruction = reconstruct_povm(
+        scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=50, seed=args.seed, quiet=quiet
+    )
+    theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
+    pointwise = pointwise_wigner(scan, seed=args.seed, quiet=quiet)
+    smoothed = smoothed_wigner(pointwise) if pointwise is not None else None
+    summary = cross_check(theta_model, theta_se, reconstruction, pointwise, model_wigner=lambda alpha: np.asarray(povm_wigner(theta_model, alpha)))
+
+    def write(out_dir):
+        return write_reconstruction_csvs(
+            out_dir, reconstruction, pointwise, smoothed,
+            model_theta=theta_model, model_stderr=theta_se,
+        )
+
+    return {
+        "summary": summary,
+        "reconstruction": reconstruction,
+        "pointwise": pointwise,
+        "smoothed": smoothed,
+        "model_theta": theta_model,
+        "model_stderr": theta_se,
+        "write": write,
+    }

@@ -1,0 +1,42 @@
+"""Compact human-readable summary of a datasheet for the terminal."""
+from __future__ import annotations
+
+__all__ = ["format_summary"]
+
+
+def _num(value, digits=4) -> str:
+    if value is None:
+        return "-"
+    return f"{value:.{digits}g}"
+
+
+def format_summary(sheet: dict, files: dict) -> str:
+    model = sheet["model"]
+    lines = [f"model      {model['spec']}", f"verdict    {sheet.get('verdict') or '-'}", ""]
+    lines.append(f"{'figure':<28}{'value':>12}{'stderr':>12}{'stat':>12}{'calib':>12}   95% interval")
+    for name, fig in sheet["figures"].items():
+        lines.append(
+            f"{name:<28}{_num(fig['value']):>12}{_num(fig['stderr']):>12}{_num(fig.get('stat_stderr')):>12}"
+            f"{_num(fig.get('calibration_stderr')):>12}   [{_num(fig['ci95'][0])}, {_num(fig['ci95'][1])}]"
+        )
+    note = sheet["calibration"].get("note")
+    if note:
+        lines.append(f"note: {note}")
+    gof = sheet["goodness_of_fit"]
+    lines.append("")
+    lines.append(f"fit quality  deviance {gof['deviance']:.1f} on {gof['dof']} dof, p = {_num(gof['p_value'], 3)}"
+                 + ("" if gof["converged"] else "  (optimiser did NOT converge)"))
+    comparison = sheet.get("model_comparison") or []
+    if len(comparison) > 1:
+        lines.append("")
+        lines.append(f"{'candidate':<44}{'k':>3}{'dBIC':>10}{'dAIC':>10}{'p':>10}")
+        for row in comparison[:6]:
+            lines.append(f"{row['model']:<44}{row['parameters']:>3}{row['delta_bic']:>10.1f}{row['delta_aic']:>10.1f}{_num(row['p_value'], 3):>10}")
+    cross = sheet.get("cross_check") or {}
+    if cross.get("verdict"):
+        lines.append("")
+        lines.append(f"cross-check  {cross['verdict']}")
+    lines.append("")
+    for name, path in files.items():
+        lines.append(f"wrote {name:<12} {path}")
+    return "\n".join(lines)
