@@ -110,7 +110,11 @@ def _solve_simplex(design, weights, q):
 
 
 def _solve(design, weights, q, method):
-    return _solve_simplex(design, weights, q) if method == "simplex" else _solve_box(design, weights, q)
+    # With two outcomes the box problems of the two outcomes are mirror images (Q_1 = 1 - Q_0,
+    # bounds symmetric), so the box solution already satisfies p_0 + p_1 = 1: use it.
+    if method == "simplex" and q.shape[1] > 2:
+        return _solve_simplex(design, weights, q)
+    return _solve_box(design, weights, q)
 
 
 @dataclass(frozen=True)
