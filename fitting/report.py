@@ -16,16 +16,15 @@ W = 1/pi. Observed frequencies carry Wilson score intervals at one standard devi
 collapse at zero counts. Residuals are Pearson-standardised:
 (observed - expected) / sqrt(shots q (1 - q)).
 
-The pointwise and smoothed Wigner values are read from the ``wigner.csv`` the pipeline
-writes into ``out_dir`` before the report (columns re_alpha, im_alpha, outcome, value,
-stderr, source, as fixed by the data contract), so the report depends only on that file
-layout. A detector's elements are phase insensitive, so a point at amplitude alpha is drawn
-at Re(alpha) = sign * |alpha| on the real axis (sign of Re(alpha), + when it is 0).
+The pointwise and smoothed Wigner values come from ``cross["pointwise"]`` and
+``cross["smoothed"]`` (``pointwise_wigner`` results: ``alpha`` (n_points,) complex,
+``values`` and ``stderr`` (n_outcomes, n_points)). A detector's elements are phase
+insensitive, so a point at amplitude alpha is drawn at sign(Re alpha) |alpha| on the real
+axis (+ when Re(alpha) = 0); the smoothed curve is drawn from its real-axis points.
 """
 from __future__ import annotations
 
 import base64
-import csv
 import html
 import json
 import functools
@@ -40,7 +39,7 @@ from povmfit.models import choose_cutoff, povm_wigner, probe_distributions
 from . import plots
 from ._io import atomic_write_bytes, atomic_write_text
 
-__all__ = ["write_report", "standardised_residuals", "wilson_interval", "model_curves", "render_html"]
+__all__ = ["write_report", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
 
 _MAX_CURVE_LEVELS = 4
 _GRID_POINTS = 160
@@ -107,44 +106,29 @@ def model_curves(scan, result) -> list[dict]:
     return [{"level": j, "mean_photons": grid + levels[j], "probability": q[i]} for i, j in enumerate(populated)]
 
 
-def _read_wigner_rows(path: Path) -> list[dict]:
-    if not path.is_file():
-        return []
-    with open(path, newline="", encoding="utf-8") as handle:
-        return list(csv.DictReader(handle))
+def wigner_series(alpha, values, stderr=None, real_axis_only: bool = False) -> list[dict]:
+    """Per outcome: ``re_alpha`` (sign(Re alpha) |alpha|), ``value``, ``stderr`` arrays.
+
+    Args:
+        alpha: (n_points,) complex displacements; values, stderr: (n_outcomes, n_points).
+        real_axis_only: keep only points with Im(alpha) = 0 when there are any.
+    """
+    alpha = np.asarray(alpha, dtype=complex).reshape(-1)
+    values = np.asarray(values, dtype=float)
+    stderr = np.zeros_like(values) if stderr is None else np.nan_to_num(np.asarray(stderr, dtype=float))
+    keep = np.ones(alpha.size, dtype=bool)
+    if real_axis_only and np.any(np.abs(alpha.imag) < 1e-9):
+        keep = np.abs(alpha.imag) < 1e-9
+    radius = np.abs(alpha[keep])
+    signed = np.where(alpha[keep].real < 0, -radius, radius)
+    return [{"re_alpha": signed, "value": values[k, keep], "stderr": stderr[k, keep]} for k in range(values.shape[0])]
 
 
-def _float(text) -> float:
-    try:
-        return float(text)
-    except (TypeError, ValueError):
-        return float("nan")
-
-
-def _wigner_series(rows: list[dict], source: str, n_outcomes: int, real_axis_only: bool) -> list[dict]:
-    """Per outcome: re_alpha (signed |alpha|), value, stderr of the rows of one source."""
-    series = []
-    for k in range(n_outcomes):
-        chosen = [r for r in rows if r.get("source") == source and r.get("outcome") == str(k)]
-        re = np.array([_float(r.get("re_alpha")) for r in chosen])
-        im = np.array([_float(r.get("im_alpha")) for r in chosen])
-        if real_axis_only and np.any(np.abs(im) < 1e-9):
-            keep = np.abs(im) < 1e-9
-            chosen, re, im = [c for c, ok in zip(chosen, keep) if ok], re[keep], im[keep]
-        radius = np.hypot(re, im)
-        series.append({
-            "re_alpha": np.where(re < 0, -radius, radius),
-            "value": np.array([_float(r.get("value")) for r in chosen]),
-            "stderr": np.nan_to_num(np.array([_float(r.get("stderr")) for r in chosen])),
-        })
-    return series
-
-
-def _wigner_data(out_dir: Path, scan, cross: dict):
+def _wigner_data(scan, cross: dict):
     theta = np.asarray(cross["model_theta"])
-    rows = _read_wigner_rows(out_dir / "wigner.csv") if cross.get("pointwise") is not None else []
-    points = _wigner_series(rows, "pointwise", theta.shape[0], real_axis_only=False)
-    smoothed = _wigner_series(rows, "smoothed", theta.shape[0], real_axis_only=True) if cross.get("smoothed") is not None else []
+    pointwise, smoothed = cross.get("pointwise"), cross.get("smoothed")
+    points = wigner_series(pointwise.alpha, pointwise.values, pointwise.stderr) if pointwise is not None else []
+    curve = wigner_series(smoothed.alpha, smoothed.values, real_axis_only=True) if smoothed is not None else []
     reach = math.sqrt(float(np.max(scan.coherent_photons)))
     for p in points:
         if p["re_alpha"].size:
@@ -152,7 +136,7 @@ def _wigner_data(out_dir: Path, scan, cross: dict):
     reach = max(1.5, 1.1 * reach)
     grid = np.linspace(-reach, reach, 2 * _GRID_POINTS + 1)
     values = np.asarray(jax.jit(povm_wigner)(theta, grid + 0j))
-    return grid, values, points, smoothed
+    return grid, values, points, curve
 
 
 # ----- HTML pieces ---------------------------------------------------------------------------
@@ -234,14 +218,18 @@ def _verdict_section(sheet: dict, comparison) -> str:
     return "".join(out)
 
 
+def _size(value) -> int:
+    return sum(_size(v) for v in value) if isinstance(value, (list, tuple)) else 1
+
+
 def _flatten(data: dict, prefix: str = "") -> list[tuple[str, object]]:
     items = []
     for key, value in data.items():
         name = f"{prefix}{key}"
         if isinstance(value, dict):
             items += _flatten(value, name + ".")
-        elif isinstance(value, (list, tuple)) and len(value) > 8:
-            items.append((name, f"{len(value)} entries (see datasheet.json)"))
+        elif isinstance(value, (list, tuple)) and _size(value) > 8:
+            items.append((name, f"{_size(value)} numbers (see datasheet.json)"))
         else:
             items.append((name, value))
     return items
@@ -331,7 +319,7 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
     fig = plots.povm_figure(model_theta, model_se, np.asarray(recon.theta), np.asarray(recon.stderr), np.asarray(recon.constrained))
     png_povm = _save_plot(out_dir, "povm", fig, files)
 
-    grid, values, points, smoothed = _wigner_data(out_dir, scan, cross)
+    grid, values, points, smoothed = _wigner_data(scan, cross)
     fig = plots.wigner_figure(grid, values, points, smoothed)
     png_wig = _save_plot(out_dir, "wigner", fig, files)
 

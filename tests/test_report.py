@@ -56,10 +56,15 @@ def report_inputs(scan_path):
     result = comparison.fits[comparison.chosen.spec]
     recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4], quiet=True)
     theta, se = model_povm_with_errors(result, recon.n_photons)
-    summary = {"verdict": "test verdict <b>not bold</b>", "povm": {"max_abs_z": 1.5, "agrees": True}}
+    summary = {"verdict": "test verdict <b>not bold</b>",
+               "povm": {"max_abs_z": 1.5, "agrees": True, "z": [[0.5] * 5] * 3}}
     sheet = datasheet_document(scan, result, options={"model": "auto", "note": "<script>alert(1)</script>"},
                                comparison=comparison.to_dict(), verdict=comparison.verdict, cross_check=summary)
-    cross = {"summary": summary, "reconstruction": recon, "pointwise": None, "smoothed": None,
+    from povmfit.fitting.pointwise_wigner import pointwise_wigner, smoothed_wigner
+
+    pointwise = pointwise_wigner(scan.coherent_photons, scan.thermal_photons, scan.counts, scan.phase_rad,
+                                 bootstrap=10, seed=0, quiet=True)
+    cross = {"summary": summary, "reconstruction": recon, "pointwise": pointwise, "smoothed": smoothed_wigner(pointwise),
              "model_theta": theta, "model_stderr": se}
     return scan, result, sheet, comparison, cross
 
@@ -90,6 +95,8 @@ def test_write_report_directly_escapes_text_and_writes_plots(direct_report):
     check_page(page)
     assert "<script>" not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
     assert "&lt;b&gt;not bold&lt;/b&gt;" in page
+    assert "points: pointwise values from displaced-thermal probes" in page  # alpha = 0 and 1 have 2+ levels
+    assert "15 numbers (see datasheet.json)" in page  # a long nested list is summarised, not dumped
     assert "probe photon numbers taken as exact" in page  # the calibration note (no --calibration-uncertainty)
     for name in ("outcome_probabilities", "residuals", "povm", "wigner"):
         png, svg = files[f"plot_{name}_png"], files[f"plot_{name}_svg"]
@@ -109,22 +116,18 @@ def test_standardised_residuals_and_wilson_interval():
     assert lo == 0.0 and hi == pytest.approx(1 / 101)
 
 
-def test_wigner_rows_are_rotated_onto_the_real_axis(tmp_path):
-    from povmfit.fitting.report import _read_wigner_rows, _wigner_series
+def test_wigner_points_are_rotated_onto_the_real_axis():
+    from povmfit.fitting.report import wigner_series
 
-    (tmp_path / "wigner.csv").write_text(
-        "re_alpha,im_alpha,outcome,value,stderr,source\n"
-        "-0.6,0.0,0,0.1,0.01,pointwise\n0.0,0.8,0,0.2,0.02,pointwise\n0.3,0.4,1,0.3,,pointwise\n"
-        "0.5,0.0,0,0.25,,smoothed\n0.5,0.5,0,0.9,,smoothed\n"
-    )
-    rows = _read_wigner_rows(tmp_path / "wigner.csv")
-    points = _wigner_series(rows, "pointwise", 2, real_axis_only=False)
+    alpha = np.array([-0.6, 0.8j, 0.3 + 0.4j])
+    values = np.array([[0.1, 0.2, 0.3], [0.4, 0.5, 0.6]])
+    points = wigner_series(alpha, values, np.full((2, 3), np.nan))
     # phase insensitivity: alpha is drawn at sign(Re alpha) |alpha| (|0.3+0.4i| = 0.5, by hand)
-    np.testing.assert_allclose(points[0]["re_alpha"], [-0.6, 0.8])
-    np.testing.assert_allclose(points[1]["re_alpha"], [0.5])
-    np.testing.assert_allclose(points[1]["stderr"], [0.0])  # empty stderr cell drawn without a bar
-    smoothed = _wigner_series(rows, "smoothed", 2, real_axis_only=True)
-    np.testing.assert_allclose(smoothed[0]["value"], [0.25])  # only the Im(alpha) = 0 row is kept
+    np.testing.assert_allclose(points[1]["re_alpha"], [-0.6, 0.8, 0.5])
+    np.testing.assert_allclose(points[1]["value"], [0.4, 0.5, 0.6])
+    np.testing.assert_allclose(points[0]["stderr"], 0.0)  # unknown errors drawn without bars
+    curve = wigner_series(alpha, values, real_axis_only=True)
+    np.testing.assert_allclose(curve[0]["value"], [0.1])  # only the Im(alpha) = 0 point is kept
 
 
 def _chromium():
