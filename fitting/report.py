@@ -290,6 +290,10 @@ def render_html(title: str, sections: list[tuple[str, str]]) -> str:
             f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1><nav>{nav}</nav>{body}</body></html>\n")
 
 
+def _saturation(cross: dict) -> str:
+    return str(getattr(cross.get("pointwise"), "saturation", "?"))
+
+
 # ----- the report ------------------------------------------------------------------------------
 def _save_plot(out_dir: Path, name: str, fig, files: dict) -> bytes:
     png = plots.figure_bytes(fig, "png")
@@ -344,7 +348,9 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
             "Wigner functions of the POVM elements along the real axis. Axis convention: alpha is the complex amplitude "
             "of the displacement, the horizontal axis is Re(alpha) at Im(alpha) = 0, and the quadrature is "
             "q = sqrt(2) Re(alpha). Normalisation: the identity has W = 1/pi. Line: model; "
-            + ("points: pointwise values from displaced-thermal probes (phase insensitive, so drawn at +-|alpha|); dashed: smoothed."
+            + ("points: pointwise values from displaced-thermal probes (phase insensitive, so drawn at +-|alpha|); dashed: smoothed. "
+               f"The pointwise values assume the response is constant above M = {_saturation(cross)} photons (as many unknowns as "
+               "thermal levels), so with few thermal levels they can sit off the exact model curve."
                if has_points else "no pointwise values were computed (they need displacements probed at two or more thermal levels).")))),
         ("Cross-check", _cross_section(cross.get("summary"))),
         ("Provenance", _provenance_section(sheet, scan)),
