@@ -25,6 +25,8 @@ from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cache"]
 
+RECONSTRUCTION_BOOTSTRAP = 50
+
 
 def enable_compilation_cache() -> None:
     """Keep JAX's compiled code in the user cache folder across runs."""
@@ -149,24 +151,27 @@ def _single_row(result) -> list:
 
 def _cross_check_section(scan, result, args) -> dict:
     """Model-free reconstructions of the same scan and their comparison with the fit."""
+    from .cmd_reconstruct import povm_rows, reconstruct_scan, wigner_rows, write_reconstruction_csvs
     from .cross_check import cross_check
-    from .pointwise_wigner import pointwise_wigner, smoothed_wigner
-    from .reconstruct import reconstruct_povm
-    from .cmd_reconstruct import write_reconstruction_csvs
 
-    quiet = args.quiet or args.json
-    reconstruction = reconstruct_povm(
-        scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=50, seed=args.seed, quiet=quiet
-    )
+    parts = reconstruct_scan(scan, bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=args.quiet or args.json)
+    reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
     theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
-    pointwise = pointwise_wigner(scan, seed=args.seed, quiet=quiet)
-    smoothed = smoothed_wigner(pointwise) if pointwise is not None else None
-    summary = cross_check(theta_model, theta_se, reconstruction, pointwise, model_wigner=lambda alpha: np.asarray(povm_wigner(theta_model, alpha)))
+    summary = cross_check(
+        theta_model, theta_se, reconstruction, pointwise, probes=(scan.coherent_photons, scan.thermal_photons)
+    )
+    if parts["phase_test"] is not None:
+        summary["phase_insensitivity"] = parts["phase_test"].to_dict()
+    grid = smoothed.alpha if smoothed is not None else (pointwise.alpha if pointwise is not None else None)
+    model_wigner = None if grid is None else np.asarray(povm_wigner(theta_model, jnp.asarray(grid)))
 
     def write(out_dir):
+        extra = []
+        if model_wigner is not None:
+            extra = wigner_rows(grid, model_wigner, np.zeros_like(model_wigner), "model")
         return write_reconstruction_csvs(
             out_dir, reconstruction, pointwise, smoothed,
-            model_theta=theta_model, model_stderr=theta_se,
+            model_rows=povm_rows(theta_model, theta_se, "model"), model_wigner_rows=extra,
         )
 
     return {
@@ -176,5 +181,7 @@ def _cross_check_section(scan, result, args) -> dict:
         "smoothed": smoothed,
         "model_theta": theta_model,
         "model_stderr": theta_se,
+        "model_wigner": model_wigner,
+        "model_wigner_alpha": grid,
         "write": write,
     }
