@@ -47,6 +47,9 @@ def main(argv=None) -> int:
     if getattr(args, "handler", None) is None:
         parser.print_help()
         return 0
+    from .pipeline import enable_compilation_cache
+
+    enable_compilation_cache()
     try:
         return int(args.handler(args) or 0)
     except InputError as error:
