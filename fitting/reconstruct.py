@@ -40,7 +40,7 @@ from povmfit.models import banded_probe_distributions, choose_cutoff
 __all__ = [
     "Reconstruction", "reconstruct_povm", "ProblemLayout", "build_layout", "WeightedOperator",
     "weighted_operator", "solve_povm", "cross_validate", "predicted_frequencies", "Progress",
-    "objective_value", "project_columns_to_simplex", "DEFAULT_GRID", "DEFAULT_FOLDS",
+    "objective_value", "project_columns_to_simplex", "coarse_start", "interpolation_matrix", "DEFAULT_GRID", "DEFAULT_FOLDS",
 ]
 
 DEFAULT_GRID = tuple(10.0 ** np.arange(-8, 1))  # g / lambda_max(F^T W F)
@@ -271,6 +271,40 @@ def solve_povm(op: WeightedOperator, frequencies, regularisation: float, theta0=
     return np.asarray(theta), int(iterations), bool(converged)
 
 
+def interpolation_matrix(n_coarse: int, n_photons: int) -> np.ndarray:
+    """Hat functions on ``n_coarse`` evenly spaced nodes over 0..n_photons-1: (n_coarse, n_photons).
+
+    Columns are convex weights, so theta = theta_coarse @ P keeps every column in the simplex.
+    """
+    nodes = np.linspace(0.0, n_photons - 1.0, n_coarse)
+    spacing = nodes[1] - nodes[0]
+    return np.clip(1.0 - np.abs(np.arange(n_photons)[None, :] - nodes[:, None]) / spacing, 0.0, None)
+
+
+def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisation: float,
+                 n_coarse: int = 400, rtol: float = 1e-10) -> np.ndarray:
+    """Warm start for large problems: solve with theta piecewise linear between ``n_coarse``
+    nodes (the smoothness term of a piecewise-linear theta with node spacing h is the coarse
+    one divided by h) and interpolate back. Shape (n_outcomes, n_photons)."""
+    n_photons = layout.n_photons
+    n_coarse = int(min(n_coarse, n_photons))
+    hats = interpolation_matrix(n_coarse, n_photons)
+    n_probes = int(layout.probe_index.max()) + 1
+    coarse = np.zeros((n_probes, n_coarse))
+    padded_length = (layout.blocks.shape[0] - 1) * layout.stride + layout.span
+    hats_padded = np.zeros((n_coarse, padded_length))
+    hats_padded[:, :n_photons] = hats
+    for b in range(layout.blocks.shape[0]):
+        rows = layout.probe_index[b] >= 0
+        window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
+        coarse[layout.probe_index[b, rows]] = layout.blocks[b, rows] @ window.T
+    coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
+    spacing = (n_photons - 1.0) / (n_coarse - 1.0)
+    theta, _, _ = solve_povm(weighted_operator(coarse_layout, probe_weights), frequencies,
+                             regularisation / spacing, rtol=rtol)
+    return theta @ hats
+
+
 def objective_value(layout: ProblemLayout, frequencies, probe_weights, regularisation: float, theta) -> float:
     """The objective of the module docstring at ``theta`` (computed from the residuals)."""
     theta = np.asarray(theta, dtype=float)
@@ -429,7 +463,8 @@ def reconstruct_povm(coherent, thermal, counts, *, n_photons: int | None = None,
         chosen = float(absolute[int(np.argmin(scores))])
     else:
         scores, chosen = np.zeros(1), float(absolute[0])
-    theta, iterations, converged = solve_povm(op, frequencies, chosen)
+    start = coarse_start(layout, frequencies, probe_weights, chosen) if op.kind == "blocks" else None
+    theta, iterations, converged = solve_povm(op, frequencies, chosen, start)
     stderr = _bootstrap_stderr(op, theta, shots, chosen, bootstrap, rng, quiet)
     weight = banded_probe_distributions(coherent, thermal, n_photons).column_weights(shots)
     return Reconstruction(

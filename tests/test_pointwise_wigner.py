@@ -78,7 +78,7 @@ def test_lossy_closed_form_within_bootstrap_errors():
     coherent, thermal = grid(np.linspace(0.0, 2.0, 9), [0.0, 0.2, 0.5, 1.0, 1.5, 2.0])
     q = model_probabilities("threshold", {"efficiency": eta}, coherent, thermal)
     counts = np.random.default_rng(0).multinomial(20_000, q)
-    result = pointwise_wigner(coherent, thermal, counts, bootstrap=30, seed=1, quiet=True)
+    result = pointwise_wigner(coherent, thermal, counts, bootstrap=20, seed=1, quiet=True)
     z = (result.values[0] - lossy_no_click(result.alpha, eta)) / result.stderr[0]
     # shot noise (20,000 shots per probe) dominates the saturation bias here; |z| < 3.5 for
     # 9 points is a 0.4% false-alarm rate at most (Bonferroni)
