@@ -25,12 +25,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"povmfit {povmfit.__version__}")
     subparsers = parser.add_subparsers(dest="verb", metavar="VERB")
     for verb in VERBS:
-        try:
-            module = importlib.import_module(f"povmfit.fitting.cmd_{verb}")
-        except ModuleNotFoundError as error:
-            if error.name != f"povmfit.fitting.cmd_{verb}":
-                raise
-            continue
+        module = importlib.import_module(f"povmfit.fitting.cmd_{verb}")
         sub = module.register(subparsers)
         sub.set_defaults(handler=module.run)
     return parser
