@@ -123,6 +123,21 @@ def _lrt(small: FitResult, big: FitResult, added: str) -> dict:
     }
 
 
+def _fit_with_nested_start(scan, model, fits, calibration_uncertainty) -> FitResult:
+    """Fit ``model`` starting from the estimates of its best nested candidate (new parameters at
+    their defaults); from the moment-based start when there is none, or when the nested start
+    ends worse than the nested model itself (which the larger model contains)."""
+    compute = _compute_model(model)
+    nested = [f for f in fits.values() if f.model.family == model.family and f.model.saturation == model.saturation
+              and set(f.model.features) < set(model.features)]
+    if nested:
+        best = min(nested, key=lambda f: f.deviance)
+        fit = fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False, initial=best.values)
+        if fit.deviance <= best.deviance + 1e-6 * max(1.0, best.deviance):
+            return fit
+    return fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False)
+
+
 def _cross_validation(scan, model, compute, folds: int, seed: int, calibration_uncertainty) -> float:
     """Sum over folds of the deviance of held-out probes under the fit to the others."""
     fold_of = np.random.default_rng(seed).permutation(scan.n_probes) % folds
@@ -157,13 +172,15 @@ def compare_models(
         raise InputError(f"{scan.source}: no candidate model fits a scan with {scan.n_outcomes} outcomes")
     fits, skipped = {}, {}
     show = not quiet and sys.stderr.isatty()
-    for i, model in enumerate(candidates):
+    # simplest first, so that each candidate can start from its best nested fit
+    ordered = sorted(candidates, key=lambda m: (m.family, len(m.features)))
+    for i, model in enumerate(ordered):
         if show:
-            print(f"\rranking models {i + 1}/{len(candidates)}: {model.spec:<50}", end="", file=sys.stderr, flush=True)
+            print(f"\rranking models {i + 1}/{len(ordered)}: {model.spec:<50}", end="", file=sys.stderr, flush=True)
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FitNotConverged)
-                fits[model.spec] = fit_scan(scan, model, calibration_uncertainty, compute_model=_compute_model(model), intervals=False)
+                fits[model.spec] = _fit_with_nested_start(scan, model, fits, calibration_uncertainty)
         except InputError as error:
             skipped[model.spec] = str(error)
     if show:

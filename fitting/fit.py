@@ -110,9 +110,21 @@ def check_identifiable(scan, model: DetectorModel) -> None:
         raise InputError(f"{scan.source}: a model with dark counts needs probes at two or more light levels")
 
 
+_CUTOFFS: dict = {}
+
+
 def _cutoff(scan, calibration_uncertainty, tolerance) -> int:
+    """Photon-number cutoff for the scan's probes (remembered per probe set: refits of the
+    same probes, as in bootstraps and cross-validation, do not recompute it)."""
     top = 1.0 + _SCALE_SPAN * calibration_uncertainty if calibration_uncertainty else 1.0
-    return choose_cutoff(scan.coherent_photons * top, scan.thermal_photons * top, tolerance)
+    coherent = np.asarray(scan.coherent_photons, float) * top
+    thermal = np.asarray(scan.thermal_photons, float) * top
+    key = (coherent.tobytes(), thermal.tobytes(), float(tolerance))
+    if key not in _CUTOFFS:
+        if len(_CUTOFFS) > 256:
+            _CUTOFFS.clear()
+        _CUTOFFS[key] = choose_cutoff(coherent, thermal, tolerance)
+    return _CUTOFFS[key]
 
 
 # value a switched-off feature's parameter takes inside a larger compiled model
@@ -210,11 +222,17 @@ class _Problem:
         return info
 
 
-def _starting_point(problem):
+def _starting_point(problem, initial: dict):
     """Simple moments: dark level from the darkest probe, efficiency from a coarse scan of the
-    deviance (other parameters at their defaults)."""
+    deviance (other parameters at their defaults). Values in ``initial`` take precedence; the
+    efficiency scan is skipped when ``initial`` gives the efficiency."""
     model = problem.model
     start = model.starting_values()
+    if "efficiency" in initial:
+        start.update({k: v for k, v in initial.items() if k in start})
+        if problem.calibrated:
+            start.setdefault("probe_scale", initial.get("probe_scale", 1.0))
+        return start
     total = (problem.coherent + problem.thermal)[problem.active]
     darkest = int(np.argmin(total))
     no_click = max(problem.counts[darkest, 0] / problem.shots[darkest], 1e-12)
@@ -224,20 +242,44 @@ def _starting_point(problem):
         start["dark_mean"] = float(np.clip(-np.log(no_click), 1e-6, 5.0))
     if problem.calibrated:
         start["probe_scale"] = 1.0
-    def best_of(grid, best):
-        for eta in grid:
-            x = np.array([eta if n == "efficiency" else start[n] for n in problem.names])
-            dev = problem.deviance(x)
-            if np.isfinite(dev) and (best is None or dev < best[0]):
-                best = (dev, eta)
-        return best
-
-    # coarse grid (step 0.098), then a finer one (step 0.0245) around its best point
-    best = best_of(np.linspace(0.02, 1.0, 11), None)
-    if best:
-        best = best_of(np.clip(best[1] + 0.0245 * np.array([-3, -2, -1, 1, 2, 3]), 1e-3, 1.0), best)
-    start["efficiency"] = float(best[1]) if best else 0.5
+    eta = _efficiency_from_no_click(problem, no_click if total[darkest] == 0 else 1.0)
+    if eta is None:  # no probe in the useful range: coarse scan of the deviance instead
+        deviances = []
+        grid = np.linspace(0.02, 1.0, 11)
+        for value in grid:
+            deviances.append(problem.deviance(np.array([value if n == "efficiency" else start[n] for n in problem.names])))
+        eta = float(grid[int(np.nanargmin(deviances))])
+    start["efficiency"] = eta
     return start
+
+
+def _efficiency_from_no_click(problem, dark_no_click: float):
+    """Moment estimate of the efficiency from the no-click (outcome 0) frequencies.
+
+    Under loss eta a displaced thermal probe (A, nbar) leaves the vacuum with probability
+    exp(-eta A/(1 + eta nbar))/(1 + eta nbar); dark counts multiply that by the dark probe's
+    no-click frequency. Each usable probe gives eta by bisection; the shot-weighted median
+    is returned (None when no probe has a no-click frequency inside 2 %..98 %).
+    """
+    light = (problem.coherent + problem.thermal)[problem.active] > 0
+    coherent = problem.coherent[problem.active][light]
+    thermal = problem.thermal[problem.active][light]
+    target = problem.counts[light, 0] / problem.shots[light] / max(dark_no_click, 1e-12)
+    usable = (target > 0.02) & (target < 0.98)
+    if not usable.any():
+        return None
+    coherent, thermal, target, weight = coherent[usable], thermal[usable], target[usable], problem.shots[light][usable]
+    lo, hi = np.full(target.shape, 1e-6), np.ones(target.shape)
+    for _ in range(40):
+        mid = 0.5 * (lo + hi)
+        vacuum = np.exp(-mid * coherent / (1 + mid * thermal)) / (1 + mid * thermal)
+        too_dark = vacuum < target  # too much light survives: efficiency lower
+        hi = np.where(too_dark, mid, hi)
+        lo = np.where(too_dark, lo, mid)
+    estimates = 0.5 * (lo + hi)
+    order = np.argsort(estimates)
+    cumulative = np.cumsum(weight[order])
+    return float(np.clip(estimates[order][np.searchsorted(cumulative, cumulative[-1] / 2)], 0.02, 1.0))
 
 
 def _profile_interval(problem, x_hat, dev_min, index, se):
@@ -294,6 +336,7 @@ def fit_scan(
     compute_model: DetectorModel | None = None,
     intervals: bool = True,
     probe_mask=None,
+    initial: dict | None = None,
 ) -> FitResult:
     """Fit ``model`` to ``scan`` by maximum likelihood (see module docstring).
 
@@ -310,6 +353,8 @@ def fit_scan(
             Wald intervals are reported.
         probe_mask: boolean array selecting the probes to fit (default all); the others are
             still predicted (``FitResult.predicted`` covers every probe).
+        initial: starting values {name: value} that override the moment-based ones (e.g.
+            the estimates of a nested model).
     """
     if calibration_uncertainty is not None and not 0 < calibration_uncertainty < 0.5:
         raise InputError(f"--calibration-uncertainty must be between 0 and 0.5 (relative), got {calibration_uncertainty}")
@@ -320,7 +365,7 @@ def fit_scan(
     n_photons = _cutoff(scan, calibration_uncertainty, tolerance)
     problem = _Problem(scan, model, compute_model or model, n_photons, weighting, calibration_uncertainty, probe_mask)
     names = problem.names
-    start = _starting_point(problem)
+    start = _starting_point(problem, initial or {})
 
     params = lmfit.Parameters()
     for name in names:
@@ -381,7 +426,7 @@ def fit_scan(
         else:
             ci95[name], ci_method[name] = _profile_interval(problem, x_hat, deviance, i, se[i]), "profile"
 
-    scale = np.sqrt(np.outer(np.diag(covariance), np.diag(covariance)))
+    scale = np.outer(se, se)
     with np.errstate(invalid="ignore", divide="ignore"):
         correlation = np.where(scale > 0, covariance / scale, 0.0)
     dof = int(problem.active.sum() * (scan.n_outcomes - 1) - n_model)
