@@ -25,6 +25,7 @@ from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cache"]
 
+# The cross-check inside `povmfit fit` uses fewer bootstrap resamples than `povmfit reconstruct`.
 RECONSTRUCTION_BOOTSTRAP = 50
 
 
@@ -53,8 +54,8 @@ def model_povm_with_errors(result, n_photons: int):
     """Model POVM theta[k, n] and its delta-method standard errors (combined covariance)."""
     model = result.model
     x = jnp.asarray(result.parameter_vector)
-    theta = np.asarray(model.povm(x, n_photons))
-    jac = np.asarray(jax.jacfwd(model.povm)(x, n_photons))  # (k, n, params)
+    theta = np.asarray(jax.jit(model.povm, static_argnums=1)(x, n_photons))
+    jac = np.asarray(jax.jit(jax.jacfwd(model.povm), static_argnums=1)(x, n_photons))  # (k, n, params)
     n_model = len(model.parameter_names)
     cov = result.covariance[:n_model, :n_model]
     var = np.einsum("kni,ij,knj->kn", jac, cov, jac)

@@ -12,13 +12,16 @@ overflows.
 from __future__ import annotations
 
 import math
+from functools import partial
 
+import jax
 import jax.numpy as jnp
 from jax import lax
 
 __all__ = ["fock_wigner_table", "povm_wigner", "saturating_wigner"]
 
 
+@partial(jax.jit, static_argnums=1)
 def fock_wigner_table(alpha, n_photons: int):
     """W_n(alpha) of |n><n| for n = 0..n_photons-1: shape (n_photons, *alpha.shape)."""
     x = 4.0 * jnp.abs(jnp.asarray(alpha)) ** 2
