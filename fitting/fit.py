@@ -389,7 +389,7 @@ def fit_scan(
             residuals(p)
         return np.array(cache["jac"])
 
-    with np.errstate(invalid="ignore"):  # lmfit's own covariance (unused) may take sqrt of < 0
+    with np.errstate(invalid="ignore", divide="ignore"):  # lmfit's own covariance (unused) may be singular
         result = lmfit.minimize(
             residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False, calc_covar=False,
             xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import sys
 import warnings
+from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
 import jax
@@ -20,7 +21,7 @@ from ._io import InputError, atomic_write_text, write_json
 from .compare import _compute_model, candidate_models, compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
-from .fit import FitNotConverged, fit_scan
+from .fit import FitNotConverged, check_identifiable, fit_scan
 from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cache"]
@@ -81,21 +82,16 @@ def _select_model(scan, args):
 def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
     """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict."""
     scan = load_scan(scan_path)
-    model, comparison = _select_model(scan, args)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", FitNotConverged)
-        result = fit_scan(scan, model, args.calibration_uncertainty, args.weighting,
-                          compute_model=_compute_model(model) if comparison else None)
-    for warning in caught:
-        print(f"povmfit: warning: {warning.message}", file=sys.stderr)
-    if args.bootstrap:
-        from .bootstrap import parametric_bootstrap
+    if args.model != "auto":
+        check_identifiable(scan, _parse_model_option(args.model))
+    # The model-free reconstructions do not depend on the fit: run them on the second core
+    # while the models are ranked and fitted (JAX and numpy release the GIL while computing).
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        model_free = pool.submit(_model_free_reconstructions, scan, args)
+        model, comparison, result = _rank_and_fit(scan, args)
+        parts = model_free.result()
+    cross = _cross_check_section(scan, result, parts)
 
-        boot = parametric_bootstrap(scan, result, args.bootstrap, args.seed, quiet=args.quiet or args.json)
-        boot.pop("estimates")
-        object.__setattr__(result, "bootstrap", boot)
-
-    cross = _cross_check_section(scan, result, args)
     options = {
         "model": args.model,
         "candidates": args.candidates,
@@ -141,6 +137,23 @@ def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
     return {"datasheet": sheet, "result": result, "comparison": comparison, "files": files}
 
 
+def _rank_and_fit(scan, args):
+    model, comparison = _select_model(scan, args)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FitNotConverged)
+        result = fit_scan(scan, model, args.calibration_uncertainty, args.weighting,
+                          compute_model=_compute_model(model) if comparison else None)
+    for warning in caught:
+        print(f"povmfit: warning: {warning.message}", file=sys.stderr)
+    if args.bootstrap:
+        from .bootstrap import parametric_bootstrap
+
+        boot = parametric_bootstrap(scan, result, args.bootstrap, args.seed, quiet=args.quiet or args.json)
+        boot.pop("estimates")
+        object.__setattr__(result, "bootstrap", boot)
+    return model, comparison, result
+
+
 def _single_row(result) -> list:
     k = len(result.model.parameter_names)
     return [{
@@ -150,21 +163,33 @@ def _single_row(result) -> list:
     }]
 
 
-def _cross_check_section(scan, result, args) -> dict:
-    """Model-free reconstructions of the same scan and their comparison with the fit."""
-    from .cmd_reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
-    from .cross_check import cross_check
+def _model_free_reconstructions(scan, args) -> dict:
+    """Full diagonal POVM, pointwise and smoothed Wigner values, phase test (no model)."""
     from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
-    from .reconstruct import build_layout, reconstruct_povm, solve_povm, weighted_operator
+    from .reconstruct import reconstruct_povm
 
-    quiet = args.quiet or args.json
     coherent, thermal, counts = scan.coherent_photons, scan.thermal_photons, scan.counts
-    reconstruction = reconstruct_povm(coherent, thermal, counts, bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=quiet)
+    reconstruction = reconstruct_povm(coherent, thermal, counts, bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=True)
     # the published box-constrained estimator (per outcome) keeps the pipeline fast
     pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method="box",
-                                 bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=quiet)
+                                 bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=True)
     smoothed = smoothed_wigner(pointwise) if pointwise is not None and pointwise.alpha.size >= 2 else None
-    parts = {"phase_test": phase_insensitivity_test(coherent, thermal, counts, scan.phase_rad)}
+    return {
+        "reconstruction": reconstruction,
+        "pointwise": pointwise,
+        "smoothed": smoothed,
+        "phase_test": phase_insensitivity_test(coherent, thermal, counts, scan.phase_rad),
+    }
+
+
+def _cross_check_section(scan, result, parts) -> dict:
+    """Compare the fit with the model-free reconstructions of the same scan."""
+    from .cmd_reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
+    from .cross_check import cross_check
+    from .reconstruct import build_layout, solve_povm, weighted_operator
+
+    coherent, thermal = scan.coherent_photons, scan.thermal_photons
+    reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
     theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
     # Compare like with like: the model's exact outcome probabilities pass through the same
     # regularised reconstruction as the data, so the smoothing bias cancels in the comparison.
