@@ -111,7 +111,7 @@ def _lrt(small: FitResult, big: FitResult, added: str) -> dict:
     if added == "unequal_split":
         p_value, reference = stats.chi2.sf(statistic, extra), f"chi2_{extra}"
     else:
-        p_value, reference = 0.5 * stats.chi2.sf(statistic, 1) if statistic > 0 else 1.0, "0.5 chi2_0 + 0.5 chi2_1 (Self & Liang 1987)"
+        p_value, reference = 0.5 * stats.chi2.sf(statistic, 1) if statistic > 0 else 1.0, "chi2_0:chi2_1 50:50"
     return {
         "null": small.model.spec,
         "alternative": big.model.spec,

@@ -165,6 +165,11 @@ def _single_row(result) -> list:
 
 def _model_free_reconstructions(scan, args) -> dict:
     """Full diagonal POVM, pointwise and smoothed Wigner values, phase test (no model)."""
+    with np.errstate(over="ignore", invalid="ignore"):  # scipy's trust-region internals (benign)
+        return _model_free_parts(scan, args)
+
+
+def _model_free_parts(scan, args) -> dict:
     from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
     from .reconstruct import reconstruct_povm
 
@@ -173,7 +178,10 @@ def _model_free_reconstructions(scan, args) -> dict:
     # the published box-constrained estimator (per outcome) keeps the pipeline fast
     pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method="box",
                                  bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=True)
-    smoothed = smoothed_wigner(pointwise) if pointwise is not None and pointwise.alpha.size >= 2 else None
+    smoothed = None
+    if pointwise is not None and pointwise.alpha.size >= 2:
+        # the smoothed curve keeps the saturation prior of the pointwise values it summarises
+        smoothed = smoothed_wigner(pointwise, max_saturation=pointwise.saturation)
     return {
         "reconstruction": reconstruction,
         "pointwise": pointwise,

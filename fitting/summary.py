@@ -37,6 +37,10 @@ def format_summary(sheet: dict, files: dict) -> str:
         lines.append("")
         lines.append(f"cross-check  {cross['verdict']}")
     lines.append("")
+    plots = [path for name, path in files.items() if name.startswith("plot_")]
     for name, path in files.items():
-        lines.append(f"wrote {name:<12} {path}")
+        if not name.startswith("plot_"):
+            lines.append(f"wrote {name:<12} {path}")
+    if plots:
+        lines.append(f"wrote {'plots':<12} {len(plots)} files in {plots[0].parent}")
     return "\n".join(lines)
