@@ -1,6 +1,7 @@
 """Errors at the edge and atomic output."""
 from __future__ import annotations
 
+import csv
 import hashlib
 import json
 import math
@@ -8,7 +9,7 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "json_safe", "file_sha256"]
+__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "json_safe", "file_sha256", "read_csv_rows"]
 
 
 class InputError(ValueError):
@@ -50,6 +51,15 @@ def json_safe(value):
 
 def write_json(path, payload) -> None:
     atomic_write_text(path, json.dumps(json_safe(payload), indent=2, allow_nan=False) + "\n")
+
+
+def read_csv_rows(path, what: str) -> list[list[str]]:
+    """All rows of a small UTF-8 CSV file; InputError naming the file when it cannot be read."""
+    try:
+        with open(path, newline="", encoding="utf-8") as handle:
+            return list(csv.reader(handle))
+    except (OSError, UnicodeDecodeError) as error:
+        raise InputError(f"{path}: cannot read the {what} ({error})") from None
 
 
 def file_sha256(path) -> str:

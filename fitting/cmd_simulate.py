@@ -20,7 +20,6 @@ Every probe gets ``--shots`` shots, drawn from the detector's outcome probabilit
 from __future__ import annotations
 
 import argparse
-import csv
 import math
 from pathlib import Path
 
@@ -28,7 +27,7 @@ import numpy as np
 
 from povmfit.models import choose_cutoff, probe_distributions, sample_counts
 
-from ._io import InputError
+from ._io import InputError, read_csv_rows
 from .emulator import Emulator
 from .scan import scan_from_arrays, write_scan
 
@@ -115,11 +114,7 @@ def parse_probe_grid(spec: str) -> tuple[np.ndarray, np.ndarray]:
 def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
     """Probe list CSV -> (coherent, thermal, labels or None). InputError names line and column."""
     path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8") as handle:
-            rows = list(csv.reader(handle))
-    except (OSError, UnicodeDecodeError) as error:
-        raise InputError(f"{path}: cannot read the probe file ({error})") from None
+    rows = read_csv_rows(path, "probe file")
     header = [h.strip() for h in rows[0]] if rows else []
     allowed = {"coherent_photons", "thermal_photons", "probe"}
     if "coherent_photons" not in header or "thermal_photons" not in header:

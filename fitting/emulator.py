@@ -27,7 +27,6 @@ per member at once.
 """
 from __future__ import annotations
 
-import csv
 import functools
 import math
 from pathlib import Path
@@ -46,7 +45,7 @@ from povmfit.models import (
     uniform_subset_patterns,
 )
 
-from ._io import InputError
+from ._io import InputError, read_csv_rows
 from .detector_file import DetectorRecord, draw_parameter_ensemble, load_detector
 from .states import state_distribution
 
@@ -250,11 +249,7 @@ def load_povm_csv(path, source: str = "auto") -> np.ndarray:
     path = Path(path)
     if source not in ("auto", "reconstruction", "model"):
         raise InputError(f"POVM source must be auto, reconstruction or model, got {source!r}")
-    try:
-        with open(path, newline="", encoding="utf-8") as handle:
-            rows = list(csv.reader(handle))
-    except (OSError, UnicodeDecodeError) as error:
-        raise InputError(f"{path}: cannot read the POVM table ({error})") from None
+    rows = read_csv_rows(path, "POVM table")
     header = [h.strip() for h in rows[0]] if rows else []
     missing = [c for c in _POVM_COLUMNS if c not in header]
     if missing:

@@ -19,7 +19,6 @@ below ``tolerance`` (default 1e-10, as for the probes).
 """
 from __future__ import annotations
 
-import csv
 import math
 from pathlib import Path
 
@@ -32,7 +31,7 @@ from povmfit.models import (
     squeezed_vacuum_distribution,
 )
 
-from ._io import InputError
+from ._io import InputError, read_csv_rows
 
 __all__ = ["STATE_KINDS", "SUM_TOLERANCE", "parse_state", "state_distribution", "distribution_from_array", "load_distribution_csv"]
 
@@ -133,11 +132,7 @@ def distribution_from_array(values) -> np.ndarray:
 def load_distribution_csv(path, column: str | None = None) -> np.ndarray:
     """Read p(n) from a CSV column (see module docstring). InputError names file, line, column."""
     path = Path(path)
-    try:
-        with open(path, newline="", encoding="utf-8") as handle:
-            rows = list(csv.reader(handle))
-    except (OSError, UnicodeDecodeError) as error:
-        raise InputError(f"{path}: cannot read the distribution file ({error})") from None
+    rows = read_csv_rows(path, "distribution file")
     if not rows:
         raise InputError(f"{path}: empty file")
     header = [h.strip() for h in rows[0]]
