@@ -110,6 +110,9 @@ def check_identifiable(scan, model: DetectorModel) -> None:
         raise InputError(f"{scan.source}: a model with dark counts needs probes at two or more light levels")
 
 
+# optimiser tolerances (relative change of parameters and deviance): tight for the reported
+# fit, looser for the many fits of a model ranking (deviance to ~1e-7 relative is plenty there)
+_TOLERANCES = {True: 1e-12, False: 1e-9}
 _CUTOFFS: dict = {}
 
 
@@ -392,7 +395,7 @@ def fit_scan(
     with np.errstate(invalid="ignore", divide="ignore"):  # lmfit's own covariance (unused) may be singular
         result = lmfit.minimize(
             residuals, params, method="least_squares", Dfun=jacobian, scale_covar=False, calc_covar=False,
-            xtol=1e-12, ftol=1e-12, gtol=1e-10, max_nfev=2000,
+            xtol=_TOLERANCES[intervals], ftol=_TOLERANCES[intervals], gtol=1e-10, max_nfev=2000,
         )
     x_hat = vector(result.params)
     converged = bool(result.success)
