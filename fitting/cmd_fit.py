@@ -3,12 +3,10 @@ from __future__ import annotations
 
 import argparse
 import json
-import sys
 from pathlib import Path
 
-import numpy as np
 
-from ._io import InputError, json_safe, write_json
+from ._io import InputError, json_safe
 from .pipeline import run_fit_pipeline
 
 EPILOG = """examples:
@@ -89,6 +87,3 @@ def print_summary(outcome, args) -> None:
 
     print(format_summary(sheet, outcome["files"]))
 
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(0)

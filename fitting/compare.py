@@ -71,7 +71,7 @@ def candidate_models(n_outcomes: int, families=None, features=None) -> list[Dete
     return out
 
 
-def _compute_model(model: DetectorModel) -> DetectorModel:
+def family_compute_model(model: DetectorModel) -> DetectorModel:
     """The largest model of the same family whose compiled code fits ``model``."""
     if model.family == "threshold":
         return DetectorModel("threshold", features=("dark",))
@@ -127,7 +127,7 @@ def _fit_with_nested_start(scan, model, fits, calibration_uncertainty) -> FitRes
     """Fit ``model`` starting from the estimates of its best nested candidate (new parameters at
     their defaults); from the moment-based start when there is none, or when the nested start
     ends worse than the nested model itself (which the larger model contains)."""
-    compute = _compute_model(model)
+    compute = family_compute_model(model)
     nested = [f for f in fits.values() if f.model.family == model.family and f.model.saturation == model.saturation
               and set(f.model.features) < set(model.features)]
     if nested:
@@ -215,7 +215,7 @@ def compare_models(
     rows.sort(key=lambda r: (not r["adequate"], r["bic"]))
     for row in rows[:cv_top] if cv_folds and scan.n_probes >= 2 * cv_folds else []:
         model = fits[row["model"]].model
-        row["cv_deviance"] = _cross_validation(scan, model, _compute_model(model), cv_folds, seed, calibration_uncertainty)
+        row["cv_deviance"] = _cross_validation(scan, model, family_compute_model(model), cv_folds, seed, calibration_uncertainty)
 
     tests = []
     by_features = {(f.model.family, f.model.features): f for f in fits.values()}

@@ -16,7 +16,6 @@ estimator's saturation bias cancels in the comparison.
 """
 from __future__ import annotations
 
-import math
 
 import numpy as np
 from scipy import stats

@@ -5,6 +5,7 @@ first file is written; every file is written atomically.
 """
 from __future__ import annotations
 
+import os
 import sys
 import warnings
 from concurrent.futures import ThreadPoolExecutor
@@ -17,8 +18,8 @@ import numpy as np
 import povmfit
 from povmfit.models import parse_model_spec, povm_wigner
 
-from ._io import InputError, atomic_write_text, write_json
-from .compare import _compute_model, candidate_models, compare_models
+from ._io import InputError, write_json
+from .compare import family_compute_model, candidate_models, compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
@@ -32,8 +33,6 @@ RECONSTRUCTION_BOOTSTRAP = 50
 
 def enable_compilation_cache() -> None:
     """Keep JAX's compiled code in the user cache folder across runs."""
-    import os
-
     base = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "povmfit" / "jax"
     try:
         base.mkdir(parents=True, exist_ok=True)
@@ -68,7 +67,6 @@ def _select_model(scan, args):
         if args.candidates:
             raise InputError("--candidates is only used with --model auto")
         return _parse_model_option(args.model), None
-    candidates = None
     if args.candidates:
         candidates = [_parse_model_option(c) for c in args.candidates.split(",") if c.strip()]
     else:
@@ -142,7 +140,7 @@ def _rank_and_fit(scan, args):
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", FitNotConverged)
         result = fit_scan(scan, model, args.calibration_uncertainty, args.weighting,
-                          compute_model=_compute_model(model) if comparison else None)
+                          compute_model=family_compute_model(model) if comparison else None)
     for warning in caught:
         print(f"povmfit: warning: {warning.message}", file=sys.stderr)
     if args.bootstrap:

@@ -26,7 +26,6 @@ re-solved at the chosen g).
 """
 from __future__ import annotations
 
-import math
 import sys
 from dataclasses import dataclass
 from functools import partial

@@ -6,7 +6,16 @@ reference plane; ``alpha`` is the complex displacement amplitude; POVMs are arra
 """
 import povmfit as _povmfit  # noqa: F401  (switches JAX to float64)
 
-from ._emulate import ResponseTable, apply_pixel_crosstalk, response_table, sample_counts, sample_outcomes, split_array_patterns, uniform_subset_patterns  # noqa: E501
+from ._banded import BandedProbeMatrix, banded_probe_distributions
+from ._emulate import (
+    ResponseTable,
+    apply_pixel_crosstalk,
+    response_table,
+    sample_counts,
+    sample_outcomes,
+    split_array_patterns,
+    uniform_subset_patterns,
+)
 from ._families import FAMILIES, FEATURES, DetectorModel, parse_model_spec
 from ._povm import POVM
 from ._probes import (
@@ -31,7 +40,6 @@ from ._stages import (
     uniform_pixel_matrix,
 )
 from ._wigner import fock_wigner_table, povm_wigner, saturating_wigner
-from ._banded import BandedProbeMatrix, banded_probe_distributions  # noqa: F401
 
 __all__ = [
     "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
@@ -40,5 +48,7 @@ __all__ = [
     "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",
     "pixel_crosstalk_matrix", "poisson_dark_matrix", "readout_matrix", "saturation_matrix",
     "split_pixel_matrix", "uniform_pixel_matrix", "fock_wigner_table", "povm_wigner",
-    "saturating_wigner",
+    "saturating_wigner", "BandedProbeMatrix", "banded_probe_distributions", "ResponseTable",
+    "apply_pixel_crosstalk", "response_table", "sample_counts", "sample_outcomes",
+    "split_array_patterns", "uniform_subset_patterns",
 ]

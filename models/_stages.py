@@ -12,7 +12,6 @@ from __future__ import annotations
 
 import jax.numpy as jnp
 import numpy as np
-from jax import lax
 from jax.scipy.special import ndtr
 from scipy.special import gammaln
 

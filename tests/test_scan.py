@@ -182,7 +182,7 @@ def test_normal_three_hundred_row_scan_loads(tmp_path):
 def test_probe_just_below_the_cutoff_limit_is_accepted(tmp_path):
     needed = choose_cutoff(3000.0, 0.0, tolerance=1e-10)  # independent call: about 3356
     assert needed < MAX_CUTOFF
-    scan = load_scan(write(tmp_path, f"coherent_photons,thermal_photons,shots,count_0,count_1\n3000,0,5,0,5\n"))
+    scan = load_scan(write(tmp_path, "coherent_photons,thermal_photons,shots,count_0,count_1\n3000,0,5,0,5\n"))
     assert scan.n_probes == 1
 
 
