@@ -57,7 +57,9 @@ def test_datasheet_and_detector_follow_the_contract(scan_file, tmp_path):
     assert {"dark_count_rate_hz", "vacuum_click_probability"} <= set(sheet["figures"])
     assert set(sheet["goodness_of_fit"]) >= {"deviance", "dof", "p_value"}
     assert sheet["provenance"]["input_sha256"] == load_scan(scan_file).sha256
-    assert sheet["cross_check"]["verdict"]
+    # the fitted model is the simulated one, so the model-free cross-check must not object
+    # (its verdict level is p < 0.01 on both statistics)
+    assert sheet["cross_check"]["verdict"] == "consistent", sheet["cross_check"]
     detector = json.loads((out / "detector.json").read_text())
     assert detector["schema"] == "povmfit.detector/1"
     assert detector["parameter_order"] == ["efficiency", "dark_probability"]
@@ -72,3 +74,13 @@ def test_bundled_demo_scan_is_the_documented_simulation():
     regenerated = generate_demo_scan()
     np.testing.assert_array_equal(shipped.counts, regenerated.counts)
     np.testing.assert_array_equal(shipped.coherent_photons, regenerated.coherent_photons)
+
+
+def test_cross_check_objects_to_a_wrong_model(scan_file, tmp_path):
+    # Loss only, no dark counts, on a detector with a 4e-3 dark probability per pixel: the
+    # vacuum probes alone show ~240 dark clicks per 20,000 shots, far outside the model.
+    out = tmp_path / "out"
+    assert main(["fit", str(scan_file), "--model", "array:3", "--out", str(out), "--quiet", "--no-report"]) == 0
+    sheet = json.loads((out / "datasheet.json").read_text())
+    assert sheet["goodness_of_fit"]["p_value"] < 1e-6
+    assert sheet["cross_check"]["verdict"].startswith("tension")
