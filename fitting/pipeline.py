@@ -5,6 +5,7 @@ first file is written; every file is written atomically.
 """
 from __future__ import annotations
 
+import dataclasses
 import os
 import sys
 import warnings
@@ -29,6 +30,7 @@ __all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cac
 
 # The cross-check inside `povmfit fit` uses fewer bootstrap resamples than `povmfit reconstruct`.
 RECONSTRUCTION_BOOTSTRAP = 50
+CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 
 
 def enable_compilation_cache() -> None:
@@ -88,7 +90,7 @@ def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
         model_free = pool.submit(_model_free_reconstructions, scan, args)
         model, comparison, result = _rank_and_fit(scan, args)
         parts = model_free.result()
-    cross = _cross_check_section(scan, result, parts)
+    cross = _cross_check_section(scan, result, parts, args.seed)
 
     options = {
         "model": args.model,
@@ -188,24 +190,50 @@ def _model_free_parts(scan, args) -> dict:
     }
 
 
-def _cross_check_section(scan, result, parts) -> dict:
+def model_seen_through_reconstruction(scan, result, reconstruction, seed):
+    """Mean and spread of the reconstruction under the fitted model: (n_outcomes, n_photons) each.
+
+    Scans are simulated from the model's outcome probabilities (same probes and shots,
+    seeded) and reconstructed with the data's regularisation strength, so the smoothing bias
+    and the constraint effects of the reconstruction act on the model exactly as on the data.
+    """
+    from .reconstruct import build_layout, solve_povm, weighted_operator
+
+    shots = np.asarray(scan.shots)
+    operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
+                                 shots / shots.mean())
+    q = np.clip(result.predicted, 0.0, None)
+    q = q / q.sum(axis=1, keepdims=True)
+    # warm start at the noiseless reconstruction: the solutions do not depend on the start
+    # (checked against cold starts), only the time does
+    start, _, _ = solve_povm(operator, q, reconstruction.regularisation)
+    rng = np.random.default_rng([seed, 1])
+    draws = np.stack([
+        solve_povm(operator, rng.multinomial(shots, q) / shots[:, None], reconstruction.regularisation, start, rtol=1e-11)[0]
+        for _ in range(CROSS_CHECK_SIMULATIONS)
+    ])
+    return draws.mean(axis=0), draws.std(axis=0, ddof=1)
+
+
+def _cross_check_section(scan, result, parts, seed: int = 0) -> dict:
     """Compare the fit with the model-free reconstructions of the same scan."""
     from .cmd_reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
     from .cross_check import cross_check
-    from .reconstruct import build_layout, solve_povm, weighted_operator
 
     coherent, thermal = scan.coherent_photons, scan.thermal_photons
     reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
     theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
-    # Compare like with like: the model's exact outcome probabilities pass through the same
-    # regularised reconstruction as the data, so the smoothing bias cancels in the comparison.
-    shots = np.asarray(scan.shots, float)
-    operator = weighted_operator(build_layout(coherent, thermal, reconstruction.n_photons), shots / shots.mean())
-    predicted = np.clip(result.predicted, 0.0, None)
-    predicted = predicted / predicted.sum(axis=1, keepdims=True)
-    theta_seen, _, _ = solve_povm(operator, predicted, reconstruction.regularisation)
-    summary = cross_check(theta_seen, theta_se, reconstruction, pointwise, probes=(coherent, thermal))
-    summary["povm_comparison"] = "model probabilities reconstructed with the same regularisation as the data"
+    theta_expected, theta_spread = model_seen_through_reconstruction(scan, result, reconstruction, seed)
+    # Under the model the reconstruction of the data is one draw from (theta_expected,
+    # theta_spread); the fit's own parameter uncertainty is added in quadrature.
+    summary = cross_check(
+        theta_expected, np.sqrt(theta_spread**2 + theta_se**2), dataclasses.replace(reconstruction, stderr=np.zeros_like(reconstruction.stderr)),
+        pointwise, probes=(coherent, thermal),
+    )
+    summary["povm_comparison"] = (
+        f"reconstruction of the data against {CROSS_CHECK_SIMULATIONS} reconstructions of scans simulated from the "
+        "fitted model (same probes, shots and regularisation)"
+    )
     if parts["phase_test"] is not None:
         summary["phase_insensitivity"] = parts["phase_test"].to_dict()
     grid = smoothed.alpha if smoothed is not None else (pointwise.alpha if pointwise is not None else None)
