@@ -45,11 +45,11 @@ def enable_compilation_cache() -> None:
     jax.config.update("jax_persistent_cache_min_entry_size_bytes", -1)
 
 
-def _parse_model_option(text: str):
+def _parse_model_option(text: str, option: str = "--model"):
     try:
         return parse_model_spec(text)
     except ValueError as error:
-        raise InputError(f"--model: {error}") from None
+        raise InputError(f"{option}: {error}") from None
 
 
 def model_povm_with_errors(result, n_photons: int):
@@ -66,11 +66,9 @@ def model_povm_with_errors(result, n_photons: int):
 
 def _select_model(scan, args):
     if args.model != "auto":
-        if args.candidates:
-            raise InputError("--candidates is only used with --model auto")
         return _parse_model_option(args.model), None
     if args.candidates:
-        candidates = [_parse_model_option(c) for c in args.candidates.split(",") if c.strip()]
+        candidates = [_parse_model_option(c, "--candidates") for c in args.candidates.split(",") if c.strip()]
     else:
         candidates = candidate_models(scan.n_outcomes)
     comparison = compare_models(
@@ -82,8 +80,13 @@ def _select_model(scan, args):
 def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
     """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict."""
     scan = load_scan(scan_path)
-    if args.model != "auto":
+    if args.model != "auto":  # refuse what can be refused before any work starts
+        if args.candidates:
+            raise InputError("--candidates is only used with --model auto")
         check_identifiable(scan, _parse_model_option(args.model))
+    elif args.candidates:
+        for spec in args.candidates.split(","):
+            _parse_model_option(spec, "--candidates")
     # The model-free reconstructions do not depend on the fit: run them on the second core
     # while the models are ranked and fitted (JAX and numpy release the GIL while computing).
     with ThreadPoolExecutor(max_workers=1) as pool:
