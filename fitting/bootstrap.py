@@ -65,13 +65,9 @@ def parametric_bootstrap(scan, result, n_resamples: int, seed, quiet: bool = Fal
     """
     rng = np.random.default_rng(seed)
     fns = compiled(result.model, result.n_photons, result.weighting, result.calibration_uncertainty is not None)
-    bounds = dict(result.model.bounds())
     names = result.names
-    lower = np.array([bounds.get(n, (0.05, 10.0))[0] for n in names])
-    upper = np.array([bounds.get(n, (0.05, 10.0))[1] for n in names])
-    if "probe_scale" in names:
-        width = result.calibration_uncertainty
-        lower[-1], upper[-1] = max(1 - 6 * width, 0.05), 1 + 6 * width
+    lower = np.array([result.bounds[n][0] for n in names])
+    upper = np.array([result.bounds[n][1] for n in names])
     width = result.calibration_uncertainty or 1.0
     x_hat = np.array([result.values[n] for n in names])
     refit = batched_refit(fns, lower, upper)

@@ -56,6 +56,7 @@ class FitResult:
         converged, message: optimiser status.
         calibration_uncertainty: relative 1-sigma probe calibration width, or None.
         weighting: "deviance" or "pearson".
+        bounds: {name: (lo, hi)} of every fitted parameter, as the optimiser used them.
     """
 
     model: DetectorModel
@@ -78,15 +79,12 @@ class FitResult:
     message: str
     calibration_uncertainty: float | None
     weighting: str
+    bounds: dict
     bootstrap: dict | None = field(default=None)
 
     @property
     def parameter_vector(self) -> np.ndarray:
         return np.array([self.values[n] for n in self.model.parameter_names])
-
-    @property
-    def n_parameters(self) -> int:
-        return len(self.names) - (1 if self.calibration_uncertainty else 0)
 
 
 def check_identifiable(scan, model: DetectorModel) -> None:
@@ -455,6 +453,7 @@ def fit_scan(
         message=message,
         calibration_uncertainty=calibration_uncertainty,
         weighting=weighting,
+        bounds={n: tuple(problem.bounds[n]) for n in names},
     )
 
 

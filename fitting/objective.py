@@ -81,27 +81,15 @@ class _Compiled:
                 cells = jnp.concatenate([cells, ((x[n_model] - 1.0) / prior_width)[None]])
             return cells
 
-        def fisher(x, coherent, thermal, shots, prior_width):
-            """Expected Fisher information of the multinomial counts (plus the prior)."""
-            jac = jax.jacfwd(probabilities)(x, coherent, thermal)  # (p, k, params)
-            q = jnp.maximum(probabilities(x, coherent, thermal), PROBABILITY_FLOOR)
-            info = jnp.einsum("p,pki,pkj->ij", shots, jac / q[..., None], jac)
-            if calibrated:
-                info = info.at[n_model, n_model].add(1.0 / prior_width**2)
-            return info
-
         def probabilities_and_jacobian(x, coherent, thermal):
             jac = jax.jacfwd(probabilities)(x, coherent, thermal)
             return probabilities(x, coherent, thermal), jac
 
+        # the fitter forms residuals, their Jacobian and the Fisher information in numpy from
+        # this one function; the JAX residuals serve the vectorised bootstrap
         self.probabilities_and_jacobian = jax.jit(probabilities_and_jacobian)
         self.probabilities = jax.jit(probabilities)
-        self.probability_jacobian = jax.jit(jax.jacfwd(probabilities))
         self.residuals = jax.jit(residuals)
-        self.jacobian = jax.jit(jax.jacfwd(residuals))
-        self.fisher = jax.jit(fisher)
-        self.deviance = jax.jit(lambda *a: jnp.sum(residuals(*a) ** 2))
-        self.batched_deviance = jax.jit(jax.vmap(lambda x, *a: jnp.sum(residuals(x, *a) ** 2), in_axes=(0,) + (None,) * 5))
 
 
 @lru_cache(maxsize=64)

@@ -27,17 +27,17 @@ from __future__ import annotations
 import base64
 import html
 import json
-import functools
 import math
 from pathlib import Path
 
 import jax
 import numpy as np
 
-from povmfit.models import choose_cutoff, povm_wigner, probe_distributions
+from povmfit.models import choose_cutoff, povm_wigner
 
 from . import plots
 from ._io import atomic_write_bytes, atomic_write_text
+from .objective import compiled
 
 __all__ = ["write_report", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
 
@@ -82,12 +82,6 @@ def _probe_points(scan) -> dict:
     }
 
 
-@functools.lru_cache(maxsize=16)
-def _compiled_probabilities(model, n_photons: int):
-    """jit of (params, coherent, thermal) -> q[p, k] for one model and cutoff."""
-    return jax.jit(lambda x, a, t: probe_distributions(a, t, n_photons) @ model.povm(x, n_photons).T)
-
-
 def model_curves(scan, result) -> list[dict]:
     """Fitted outcome probabilities along the coherent photon number, at the (up to four)
     most populated thermal levels of the scan. The fitted probe scale, if any, is applied."""
@@ -101,7 +95,7 @@ def model_curves(scan, result) -> list[dict]:
     coherent = np.tile(grid, len(populated)) * scale
     thermal = np.repeat(levels[populated], grid.size) * scale
     n_photons = choose_cutoff(coherent, thermal, 1e-10)
-    q = np.asarray(_compiled_probabilities(result.model, n_photons)(result.parameter_vector, coherent, thermal))
+    q = np.asarray(compiled(result.model, n_photons).probabilities(result.parameter_vector, coherent, thermal))
     q = q.reshape(len(populated), grid.size, -1)
     return [{"level": j, "mean_photons": grid + levels[j], "probability": q[i]} for i, j in enumerate(populated)]
 
