@@ -9,7 +9,7 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "json_safe", "file_sha256", "read_csv_rows"]
+__all__ = ["InputError", "atomic_write_text", "atomic_write_bytes", "write_json", "json_safe", "file_sha256", "read_csv_rows", "data_rows"]
 
 
 class InputError(ValueError):
@@ -60,6 +60,18 @@ def read_csv_rows(path, what: str) -> list[list[str]]:
             return list(csv.reader(handle))
     except (OSError, UnicodeDecodeError) as error:
         raise InputError(f"{path}: cannot read the {what} ({error})") from None
+
+
+def data_rows(rows: list[list[str]], path):
+    """(line number, row) for every non-blank row after the header of ``read_csv_rows`` output;
+    InputError when a row has a different number of fields than the header."""
+    width = len(rows[0]) if rows else 0
+    for line, row in enumerate(rows[1:], start=2):
+        if not any(cell.strip() for cell in row):
+            continue
+        if len(row) != width:
+            raise InputError(f"{path}: line {line}: expected {width} fields, got {len(row)}")
+        yield line, row
 
 
 def file_sha256(path) -> str:

@@ -27,7 +27,7 @@ import numpy as np
 
 from povmfit.models import choose_cutoff, probe_distributions, sample_counts
 
-from ._io import InputError, read_csv_rows
+from ._io import InputError, data_rows, read_csv_rows
 from .emulator import Emulator
 from .scan import scan_from_arrays, write_scan
 
@@ -123,12 +123,7 @@ def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
     if unknown:
         raise InputError(f"{path}: line 1: unknown column(s) {', '.join(unknown)}")
     columns = {name: [] for name in header}
-    for offset, row in enumerate(rows[1:]):
-        line = offset + 2
-        if not any(cell.strip() for cell in row):
-            continue
-        if len(row) != len(header):
-            raise InputError(f"{path}: line {line}: expected {len(header)} fields, got {len(row)}")
+    for line, row in data_rows(rows, path):
         for name, cell in zip(header, row):
             if name == "probe":
                 columns[name].append(cell.strip())

@@ -45,7 +45,7 @@ from povmfit.models import (
     uniform_subset_patterns,
 )
 
-from ._io import InputError, read_csv_rows
+from ._io import InputError, data_rows, read_csv_rows
 from .detector_file import DetectorRecord, draw_parameter_ensemble, load_detector
 from .states import state_distribution
 
@@ -256,12 +256,7 @@ def load_povm_csv(path, source: str = "auto") -> np.ndarray:
         raise InputError(f"{path}: line 1: missing column(s) {', '.join(missing)}")
     col = {name: header.index(name) for name in _POVM_COLUMNS}
     entries = []  # (line, source, photons, outcome, probability)
-    for offset, row in enumerate(rows[1:]):
-        line = offset + 2
-        if not any(cell.strip() for cell in row):
-            continue
-        if len(row) != len(header):
-            raise InputError(f"{path}: line {line}: expected {len(header)} fields, got {len(row)}")
+    for line, row in data_rows(rows, path):
         kind = row[col["source"]].strip()
         if kind not in ("model", "reconstruction"):
             raise InputError(f"{path}: line {line}, column 'source': expected model or reconstruction, got {kind!r}")

@@ -31,7 +31,7 @@ from povmfit.models import (
     squeezed_vacuum_distribution,
 )
 
-from ._io import InputError, read_csv_rows
+from ._io import InputError, data_rows, read_csv_rows
 
 __all__ = ["STATE_KINDS", "SUM_TOLERANCE", "parse_state", "state_distribution", "distribution_from_array", "load_distribution_csv"]
 
@@ -148,12 +148,7 @@ def load_distribution_csv(path, column: str | None = None) -> np.ndarray:
     index = header.index(column)
     photons_index = header.index("photons") if "photons" in header else None
     values = []
-    for offset, row in enumerate(rows[1:]):
-        line = offset + 2
-        if not any(cell.strip() for cell in row):
-            continue
-        if len(row) != len(header):
-            raise InputError(f"{path}: line {line}: expected {len(header)} fields, got {len(row)}")
+    for line, row in data_rows(rows, path):
         if photons_index is not None and row[photons_index].strip() != str(len(values)):
             raise InputError(f"{path}: line {line}, column 'photons': expected {len(values)}, got {row[photons_index]!r}")
         try:
