@@ -55,10 +55,10 @@ def _summary(z: np.ndarray, dof: int) -> dict:
             "max_abs_z": float(np.max(np.abs(z))) if z.size else None}
 
 
-def _povm_part(model_theta, model_stderr, reconstruction) -> dict:
+def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr) -> dict:
     n = min(model_theta.shape[1], reconstruction.n_photons)
     photons = np.nonzero(reconstruction.constrained[:n])[0]
-    sigma = np.sqrt(model_stderr[:, photons] ** 2 + reconstruction.stderr[:, photons] ** 2)
+    sigma = np.sqrt(model_stderr[:, photons] ** 2 + reconstruction_stderr[:, photons] ** 2)
     # Resolution floor: with N expected shots carrying n photons, an entry cannot be known
     # better than about 3/N (the 95 % upper limit after zero events, "rule of three"), and
     # entries pinned at 0 or 1 by the constraints have no bootstrap spread at all; differences
@@ -86,7 +86,7 @@ def _wigner_part(model_values, model_stderr, pointwise) -> dict:
 
 
 def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, model_wigner=None,
-                model_wigner_stderr=None, probes=None) -> dict:
+                model_wigner_stderr=None, probes=None, reconstruction_stderr=None) -> dict:
     """Compare a fitted model with the reconstructions.
 
     Args:
@@ -98,6 +98,9 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
             the pointwise estimator applied to the model's probabilities (needs ``probes`` =
             (coherent_photons, thermal_photons) arrays of the scan).
         model_wigner_stderr: optional errors of ``model_wigner`` (default 0).
+        reconstruction_stderr: errors of the reconstruction to combine with the model's
+            (default ``reconstruction.stderr``; pass zeros when ``model_theta_stderr`` already
+            is the spread of reconstructions under the model).
     Returns:
         JSON-able dict: ``povm`` {chi_square, dof, p_value, max_abs_z, largest {outcome,
         photons, z}, photons_compared, z (n_outcomes x compared)}; ``wigner`` (or None)
@@ -108,7 +111,8 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
     """
     model_theta = np.asarray(model_theta, dtype=float)
     model_stderr = np.zeros_like(model_theta) if model_theta_stderr is None else np.asarray(model_theta_stderr, dtype=float)
-    povm = _povm_part(model_theta, model_stderr, reconstruction)
+    rec_stderr = reconstruction.stderr if reconstruction_stderr is None else np.asarray(reconstruction_stderr, dtype=float)
+    povm = _povm_part(model_theta, model_stderr, reconstruction, rec_stderr)
     wigner = None
     if pointwise is not None:
         if model_wigner is None:

@@ -5,7 +5,6 @@ first file is written; every file is written atomically.
 """
 from __future__ import annotations
 
-import dataclasses
 import os
 import sys
 import warnings
@@ -221,7 +220,7 @@ def model_seen_through_reconstruction(scan, result, reconstruction, seed):
 def _cross_check_section(scan, result, parts, seed: int = 0) -> dict:
     """Compare the fit with the model-free reconstructions of the same scan."""
     from .cmd_reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
-    from .cross_check import cross_check
+    from .cross_check import cross_check, model_pointwise_wigner
 
     coherent, thermal = scan.coherent_photons, scan.thermal_photons
     reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
@@ -229,9 +228,11 @@ def _cross_check_section(scan, result, parts, seed: int = 0) -> dict:
     theta_expected, theta_spread = model_seen_through_reconstruction(scan, result, reconstruction, seed)
     # Under the model the reconstruction of the data is one draw from (theta_expected,
     # theta_spread); the fit's own parameter uncertainty is added in quadrature.
+    # The Wigner values are compared through the pointwise estimator applied to the exact model.
+    model_pointwise = None if pointwise is None else model_pointwise_wigner(theta_model, pointwise, coherent, thermal)
     summary = cross_check(
-        theta_expected, np.sqrt(theta_spread**2 + theta_se**2), dataclasses.replace(reconstruction, stderr=np.zeros_like(reconstruction.stderr)),
-        pointwise, probes=(coherent, thermal),
+        theta_expected, np.sqrt(theta_spread**2 + theta_se**2), reconstruction, pointwise,
+        model_wigner=model_pointwise, reconstruction_stderr=np.zeros_like(reconstruction.stderr),
     )
     summary["povm_comparison"] = (
         f"reconstruction of the data against {CROSS_CHECK_SIMULATIONS} reconstructions of scans simulated from the "
