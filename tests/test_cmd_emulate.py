@@ -1,4 +1,9 @@
-"""The ``emulate`` and ``simulate`` commands: output format, refusals (exit 2, nothing written)."""
+"""The ``emulate`` and ``simulate`` commands: output format, refusals (exit 2, nothing written).
+
+Mostly plumbing (the command line must print what the library computes). The one physics
+value, the click distribution of a coherent probe, is checked against the closed form for N
+uniform on/off pixels (Sperling, Vogel, Agarwal, PRL 108, 093601 (2012); REFERENCES.md).
+"""
 from __future__ import annotations
 
 import io
@@ -7,6 +12,7 @@ from contextlib import redirect_stderr, redirect_stdout
 
 import numpy as np
 import pytest
+from scipy import stats
 
 from povmfit.fitting.cli import build_parser, main
 from povmfit.fitting.cmd_simulate import parse_probe_grid
@@ -42,6 +48,10 @@ def test_emulate_prints_outcome_count_probability(detector):
     assert sum(int(r[1]) for r in rows) == 5000
     expected = Emulator.from_detector_file(detector).probabilities("coherent:2.0")
     np.testing.assert_array_equal([float(r[2]) for r in rows], expected)  # full precision text
+    # coherent mean m on N pixels, efficiency eta, dark d: Binomial(N, 1 - q) clicks with
+    # q = (1 - d) exp(-eta m / N) (source above); the 1e-10 photon-number tail bounds the error
+    q = (1 - 0.02) * np.exp(-0.7 * 2.0 / 4)
+    np.testing.assert_allclose([float(r[2]) for r in rows], stats.binom.pmf(np.arange(5), 4, 1 - q), rtol=0, atol=1e-9)
     assert _run(["emulate", detector, "--input", "coherent:2.0", "--shots", 5000, "--seed", 3])[1] == out
 
 

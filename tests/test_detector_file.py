@@ -1,4 +1,10 @@
-"""detector.json: byte-identical round trip, one-line refusals, parameter ensembles."""
+"""detector.json: byte-identical round trip, one-line refusals, parameter ensembles.
+
+The file tests are plumbing (values written are the values read). The ensemble tests use
+the sampling theory of the normal distribution (standard error of a mean sd/sqrt(n), of a
+variance sqrt(2/n) relative) and the half-normal mean s sqrt(2/pi) of a normal truncated at
+its centre (standard results, from memory), with the tolerances stated beside each test.
+"""
 from __future__ import annotations
 
 import json
