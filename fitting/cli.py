@@ -42,7 +42,7 @@ def main(argv=None) -> int:
     if getattr(args, "handler", None) is None:
         parser.print_help()
         return 0
-    from .pipeline import enable_compilation_cache
+    from ._cache import enable_compilation_cache
 
     enable_compilation_cache()
     try:

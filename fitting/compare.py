@@ -138,8 +138,10 @@ def _fit_with_nested_start(scan, model, fits, calibration_uncertainty) -> FitRes
     return fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False)
 
 
-def _cross_validation(scan, model, compute, folds: int, seed: int, calibration_uncertainty) -> float:
-    """Sum over folds of the deviance of held-out probes under the fit to the others."""
+def _cross_validation(scan, full_fit, compute, folds: int, seed: int, calibration_uncertainty) -> float:
+    """Sum over folds of the deviance of held-out probes under the fit to the others (each fold's
+    fit starts from the estimates on all probes)."""
+    model = full_fit.model
     fold_of = np.random.default_rng(seed).permutation(scan.n_probes) % folds
     total = 0.0
     for fold in range(folds):
@@ -147,7 +149,8 @@ def _cross_validation(scan, model, compute, folds: int, seed: int, calibration_u
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FitNotConverged)
-                fit = fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False, probe_mask=~held)
+                fit = fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False,
+                               probe_mask=~held, initial=full_fit.values)
         except InputError:
             return float("nan")
         q = fit.predicted[held]
@@ -214,8 +217,8 @@ def compare_models(
         row["cv_deviance"] = None
     rows.sort(key=lambda r: (not r["adequate"], r["bic"]))
     for row in rows[:cv_top] if cv_folds and scan.n_probes >= 2 * cv_folds else []:
-        model = fits[row["model"]].model
-        row["cv_deviance"] = _cross_validation(scan, model, family_compute_model(model), cv_folds, seed, calibration_uncertainty)
+        fit = fits[row["model"]]
+        row["cv_deviance"] = _cross_validation(scan, fit, family_compute_model(fit.model), cv_folds, seed, calibration_uncertainty)
 
     tests = []
     by_features = {(f.model.family, f.model.features): f for f in fits.values()}

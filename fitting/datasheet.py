@@ -14,11 +14,11 @@ from __future__ import annotations
 
 import datetime as _dt
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 
 import povmfit
+
+from .objective import povm_and_jacobian
 
 __all__ = ["figures", "datasheet_document", "worst_residuals", "model_block", "SCHEMA"]
 
@@ -65,10 +65,10 @@ def figures(result, gate_duration_s: float | None = None) -> dict:
         extra["note"] = CALIBRATION_EXCLUDED
     out[eff] = _entry(result.values[eff], result.stderr[eff], result.ci95[eff], **extra)
 
-    x_hat = jnp.asarray(result.parameter_vector)
-    vacuum = jax.jit(model.vacuum_click_probability)
-    p_vac = float(vacuum(x_hat))
-    grad = np.asarray(jax.grad(model.vacuum_click_probability)(x_hat))
+    povm = povm_and_jacobian(model, result.n_photons)
+    theta, jac = povm(result.parameter_vector)
+    p_vac = 1.0 - float(theta[0, 0])
+    grad = -np.asarray(jac[0, 0])
     n_model = len(model.parameter_names)
     se_vac = float(np.sqrt(max(grad @ result.covariance[:n_model, :n_model] @ grad, 0.0)))
     dark = _dark_name(result)
@@ -80,7 +80,7 @@ def figures(result, gate_duration_s: float | None = None) -> dict:
         for end in result.ci95[dark]:
             x = np.array(result.parameter_vector)
             x[index] = end
-            ends.append(float(vacuum(jnp.asarray(x))))
+            ends.append(1.0 - float(povm(x)[0][0, 0]))
         ci_vac = (min(ends), max(ends))
     out["vacuum_click_probability"] = _entry(p_vac, se_vac, ci_vac)
     if dark is None:

@@ -25,7 +25,12 @@ import numpy as np
 
 from povmfit.models import DetectorModel, probe_distributions
 
-__all__ = ["predicted_probabilities", "compiled", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative"]
+from ._cache import StoredPrograms
+
+__all__ = [
+    "predicted_probabilities", "compiled", "povm_and_jacobian", "PROBABILITY_FLOOR", "cell_residuals",
+    "cell_residual_derivative",
+]
 
 PROBABILITY_FLOOR = 1e-300
 
@@ -87,7 +92,8 @@ class _Compiled:
 
         # the fitter forms residuals, their Jacobian and the Fisher information in numpy from
         # this one function; the JAX residuals serve the vectorised bootstrap
-        self.probabilities_and_jacobian = jax.jit(probabilities_and_jacobian)
+        label = f"probabilities_and_jacobian|{model.spec}|{n_photons}|{calibrated}"
+        self.probabilities_and_jacobian = StoredPrograms(jax.jit(probabilities_and_jacobian), label)
         self.probabilities = jax.jit(probabilities)
         self.residuals = jax.jit(residuals)
 
@@ -98,6 +104,20 @@ def compiled(model: DetectorModel, n_photons: int, weighting: str = "deviance", 
     if weighting not in ("deviance", "pearson"):
         raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
     return _Compiled(model, n_photons, weighting, calibrated)
+
+
+@lru_cache(maxsize=64)
+def povm_and_jacobian(model: DetectorModel, n_photons: int):
+    """Compiled ``x -> (theta[k, n], d theta[k, n] / d x[i])``, shapes (K, N) and (K, N, P).
+
+    One function per model and cutoff serves the datasheet figures and the cross-check.
+    """
+    def povm(x):
+        theta = model.povm(x, n_photons)
+        return theta, theta
+
+    return StoredPrograms(jax.jit(lambda x: jax.jacfwd(povm, has_aux=True)(x)[::-1]),
+                          f"povm_and_jacobian|{model.spec}|{n_photons}")
 
 
 def cell_residuals(q, counts, shots, weighting: str = "deviance") -> np.ndarray:

@@ -5,7 +5,6 @@ first file is written; every file is written atomically.
 """
 from __future__ import annotations
 
-import os
 import sys
 import warnings
 from concurrent.futures import ThreadPoolExecutor
@@ -23,25 +22,14 @@ from .compare import family_compute_model, candidate_models, compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
+from .objective import povm_and_jacobian
 from .scan import load_scan
 
-__all__ = ["run_fit_pipeline", "model_povm_with_errors", "enable_compilation_cache"]
+__all__ = ["run_fit_pipeline", "model_povm_with_errors"]
 
 # The cross-check inside `povmfit fit` uses fewer bootstrap resamples than `povmfit reconstruct`.
 RECONSTRUCTION_BOOTSTRAP = 50
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
-
-
-def enable_compilation_cache() -> None:
-    """Keep JAX's compiled code in the user cache folder across runs."""
-    base = Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "povmfit" / "jax"
-    try:
-        base.mkdir(parents=True, exist_ok=True)
-    except OSError:
-        return
-    jax.config.update("jax_compilation_cache_dir", str(base))
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
-    jax.config.update("jax_persistent_cache_min_entry_size_bytes", -1)
 
 
 def _parse_model_option(text: str, option: str = "--model"):
@@ -53,14 +41,10 @@ def _parse_model_option(text: str, option: str = "--model"):
 
 def model_povm_with_errors(result, n_photons: int):
     """Model POVM theta[k, n] and its delta-method standard errors (combined covariance)."""
-    model = result.model
-    x = jnp.asarray(result.parameter_vector)
-    theta = np.asarray(jax.jit(model.povm, static_argnums=1)(x, n_photons))
-    jac = np.asarray(jax.jit(jax.jacfwd(model.povm), static_argnums=1)(x, n_photons))  # (k, n, params)
-    n_model = len(model.parameter_names)
-    cov = result.covariance[:n_model, :n_model]
-    var = np.einsum("kni,ij,knj->kn", jac, cov, jac)
-    return theta, np.sqrt(np.clip(var, 0, None))
+    theta, jac = (np.asarray(a) for a in povm_and_jacobian(result.model, n_photons)(result.parameter_vector))
+    n_model = len(result.model.parameter_names)
+    var = np.einsum("kni,ij,knj->kn", jac, result.covariance[:n_model, :n_model], jac)
+    return np.asarray(theta), np.sqrt(np.clip(var, 0, None))
 
 
 def _select_model(scan, args):

@@ -10,6 +10,7 @@ where fits most often end up.
 """
 from __future__ import annotations
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 from jax.scipy.special import ndtr
@@ -101,24 +102,25 @@ def split_pixel_matrix(ratios, n_photons: int):
     pixels = ratios.shape[0]
     m = np.arange(n_photons)
     comb = np.exp(_log_comb(m[:, None].astype(float), m[None, :].astype(float)))
-    comb = np.where(m[None, :] <= m[:, None], comb, 0.0)  # comb[m, l] = C(m, l)
-    coeffs = jnp.zeros((pixels + 1, n_photons)).at[0, 0].set(1.0)
-    for i in range(pixels):
-        powers = _powers(ratios[i], n_photons).at[0].set(0.0)  # r^l for l >= 1
+    comb = jnp.asarray(np.where(m[None, :] <= m[:, None], comb, 0.0))  # comb[m, l] = C(m, l)
+    lag = m[:, None] - m[None, :]  # m - k
+
+    def add_pixel(coeffs, ratio):
         # new[j, m] = old[j, m] + sum_{l>=1} C(m, l) r^l old[j-1, m-l]
+        powers = _powers(ratio, n_photons).at[0].set(0.0)  # r^l for l >= 1
         shifted = jnp.concatenate([jnp.zeros((1, n_photons)), coeffs[:-1]], axis=0)
-        conv = _binomial_convolution(shifted, powers, comb)
-        coeffs = coeffs + conv
-    return coeffs
+        return coeffs + _binomial_convolution(shifted, powers, comb, lag), None
+
+    start = jnp.zeros((pixels + 1, n_photons)).at[0, 0].set(1.0)
+    # a scan over pixels keeps the compiled program one pixel long
+    return jax.lax.scan(add_pixel, start, ratios)[0]
 
 
-def _binomial_convolution(rows, powers, comb):
-    """out[j, m] = sum_l C(m, l) powers[l] rows[j, m-l]."""
-    n = powers.shape[0]
-    idx = np.arange(n)
-    diff = idx[:, None] - idx[None, :]  # m - l
-    gathered = jnp.where(diff[None] >= 0, rows[:, np.clip(diff, 0, None)], 0.0)  # (j, m, l)
-    return jnp.einsum("jml,ml,l->jm", gathered, comb, powers)
+def _binomial_convolution(rows, powers, comb, lag):
+    """out[j, m] = sum_l C(m, l) powers[l] rows[j, m-l], as rows @ T^T with
+    T[m, k] = C(m, k) powers[m-k] for k <= m (``lag`` = m - k): one small matrix product."""
+    toeplitz = jnp.where(lag >= 0, powers[np.clip(lag, 0, None)], 0.0) * comb
+    return rows @ toeplitz.T
 
 
 def click_dark_matrix(dark_probability, pixels: int):

@@ -59,6 +59,7 @@ def povm_wigner(theta, alpha):
     return saturating_wigner(theta, alpha)
 
 
+@jax.jit
 def saturating_wigner(theta_head, alpha):
     """Wigner values of elements that saturate at M photons (theta(n) = theta(M) for n >= M).
 

@@ -1,0 +1,49 @@
+"""The store of traced programs returns exactly what plain tracing returns."""
+import jax
+import numpy as np
+import pytest
+
+from povmfit.fitting import _cache
+from povmfit.fitting.objective import compiled
+from povmfit.models import parse_model_spec
+
+
+@pytest.fixture
+def store(tmp_path, monkeypatch):
+    monkeypatch.setitem(_cache._STORE, "folder", tmp_path)
+    return tmp_path
+
+
+def _probabilities_and_jacobian():
+    model = parse_model_spec("array:4+dark+crosstalk")
+    x = np.array([0.6, 0.01, 0.05])
+    coherent, thermal = np.array([0.0, 0.5, 2.0]), np.array([0.0, 0.3, 0.0])
+    return compiled(model, 30).probabilities_and_jacobian._jitted, (x, coherent, thermal)
+
+
+def test_stored_program_is_saved_and_reloaded_with_identical_results(store):
+    jitted, args = _probabilities_and_jacobian()
+    reference = jitted(*args)  # source: the plain jitted function (common practice, no source)
+    first = _cache.stored_program(jitted, "probe", args)
+    assert len(list(store.glob("*.hlo"))) == 1
+    second = _cache.stored_program(jitted, "probe", args)  # now read back from the file
+    for program in (first, second):
+        for got, want in zip(program(*args), reference):
+            np.testing.assert_array_equal(np.asarray(got), np.asarray(want))
+
+
+def test_programs_are_keyed_by_label_and_argument_shapes(store):
+    jitted, args = _probabilities_and_jacobian()
+    _cache.stored_program(jitted, "one", args)
+    _cache.stored_program(jitted, "two", args)
+    longer = (args[0], np.append(args[1], 1.0), np.append(args[2], 0.0))
+    wrapper = _cache.StoredPrograms(jitted, "one")
+    q, _ = wrapper(*longer)
+    assert q.shape == (4, 5)
+    assert len(list(store.glob("*.hlo"))) == 3
+
+
+def test_store_off_means_plain_tracing(monkeypatch):
+    monkeypatch.setitem(_cache._STORE, "folder", None)
+    f = jax.jit(lambda x: 2 * x)
+    assert _cache.stored_program(f, "off", (np.ones(2),)) is f
