@@ -25,7 +25,10 @@ from scipy import optimize, stats
 from povmfit.models import DetectorModel, choose_cutoff
 
 from ._io import InputError
-from .objective import PROBABILITY_FLOOR, cell_residual_derivative, cell_residuals, compiled
+from .objective import (
+    PROBABILITY_FLOOR, cell_residual_derivative, cell_residuals, compiled, fixed_probe_distributions,
+    povm_and_jacobian,
+)
 
 __all__ = ["fit_scan", "FitResult", "FitNotConverged", "CHI2_95"]
 
@@ -149,7 +152,6 @@ class _Problem:
         self.calibrated = calibration_uncertainty is not None
         self.width = float(calibration_uncertainty) if self.calibrated else 1.0
         self.weighting = weighting
-        self.fns = compiled(compute_model, n_photons, "deviance", self.calibrated)
         full = list(compute_model.parameter_names) + (["probe_scale"] if self.calibrated else [])
         self.names = tuple(model.parameter_names) + (("probe_scale",) if self.calibrated else ())
         missing = [n for n in self.names if n not in full]
@@ -159,6 +161,7 @@ class _Problem:
         self.template = np.array([0.0 if n in self.names else _null_value(n) for n in full])
         self.coherent = np.asarray(scan.coherent_photons, float)
         self.thermal = np.asarray(scan.thermal_photons, float)
+        self._probabilities_and_jacobian = self._compiled_predictions(compute_model, n_photons)
         # probes outside ``active`` are predicted but not fitted (cross-validation keeps the
         # compiled shapes of the whole scan)
         self.active = np.ones(scan.n_probes, bool) if active is None else np.asarray(active, bool)
@@ -170,19 +173,34 @@ class _Problem:
         self.bounds = bounds
         self.bounds_list = [bounds[n] for n in self.names]
 
+    def _compiled_predictions(self, compute_model, n_photons):
+        """full parameter vector -> (q[p, k], dq/dx[p, k, i]) for every probe."""
+        if self.calibrated:  # the probe distributions move with the fitted probe scale
+            fns = compiled(compute_model, n_photons, "deviance", True)
+            return lambda full: fns.probabilities_and_jacobian(full, self.coherent, self.thermal)
+        # exact probes: constant distributions times the compiled POVM and its Jacobian
+        povm = povm_and_jacobian(compute_model, n_photons)
+        distributions = fixed_probe_distributions(self.coherent, self.thermal, n_photons)
+
+        def predictions(full):
+            theta, jac = povm(full)
+            return distributions @ np.asarray(theta).T, np.tensordot(distributions, np.asarray(jac), axes=(1, 1))
+
+        return predictions
+
     def full_vector(self, x):
         full = self.template.copy()
         full[self.free_index] = x
         return full
 
     def _evaluate(self, x):
-        q, jac = self.fns.probabilities_and_jacobian(self.full_vector(x), self.coherent, self.thermal)
+        q, jac = self._probabilities_and_jacobian(self.full_vector(x))
         return np.asarray(q)[self.active], np.asarray(jac)[self.active][..., self.free_index]
 
     def all_probabilities(self, x):
         """q[p, k] for every probe of the scan, fitted or not."""
         # the probability+Jacobian function is the one compiled: reuse it rather than compile twice
-        q, _ = self.fns.probabilities_and_jacobian(self.full_vector(x), self.coherent, self.thermal)
+        q, _ = self._probabilities_and_jacobian(self.full_vector(x))
         return np.asarray(q)
 
     def probabilities(self, x):

@@ -28,7 +28,7 @@ from povmfit.models import DetectorModel, probe_distributions
 from ._cache import StoredPrograms
 
 __all__ = [
-    "predicted_probabilities", "compiled", "povm_and_jacobian", "PROBABILITY_FLOOR", "cell_residuals",
+    "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "PROBABILITY_FLOOR", "cell_residuals",
     "cell_residual_derivative",
 ]
 
@@ -106,11 +106,33 @@ def compiled(model: DetectorModel, n_photons: int, weighting: str = "deviance", 
     return _Compiled(model, n_photons, weighting, calibrated)
 
 
+@lru_cache(maxsize=16)
+def _distribution_program(n_photons: int):
+    return StoredPrograms(jax.jit(lambda coherent, thermal: probe_distributions(coherent, thermal, n_photons)),
+                          f"probe_distributions|{n_photons}")
+
+
+_DISTRIBUTIONS: dict = {}
+
+
+def fixed_probe_distributions(coherent, thermal, n_photons: int) -> np.ndarray:
+    """P[p, n] of probes taken as exact, shape (n_probes, n_photons), remembered per probe set."""
+    coherent = np.asarray(coherent, dtype=float)
+    thermal = np.asarray(thermal, dtype=float)
+    key = (coherent.tobytes(), thermal.tobytes(), n_photons)
+    if key not in _DISTRIBUTIONS:
+        if len(_DISTRIBUTIONS) > 64:
+            _DISTRIBUTIONS.clear()
+        _DISTRIBUTIONS[key] = np.asarray(_distribution_program(n_photons)(coherent, thermal))
+    return _DISTRIBUTIONS[key]
+
+
 @lru_cache(maxsize=64)
 def povm_and_jacobian(model: DetectorModel, n_photons: int):
     """Compiled ``x -> (theta[k, n], d theta[k, n] / d x[i])``, shapes (K, N) and (K, N, P).
 
-    One function per model and cutoff serves the datasheet figures and the cross-check.
+    One function per model and cutoff serves the fits with exact probes (whose probe
+    distributions are constant), the datasheet figures and the cross-check.
     """
     def povm(x):
         theta = model.povm(x, n_photons)
