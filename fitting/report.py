@@ -1,12 +1,13 @@
-"""The fit report: one self-contained ``report.html`` plus the plots as PNG and SVG.
+"""The fit report: one self-contained ``report.html`` plus the plots as SVG files.
 
 ``write_report(out_dir, scan, result, sheet, comparison, cross)`` writes
 
 - ``report.html``: sections Figures, Model verdict, Outcome probabilities, Residuals, POVM,
-  Wigner functions, Cross-check, Provenance. Plots are embedded as base64 PNG, the style
-  sheet is inline; the page loads nothing from the network. Every text taken from the data
-  (file names, model specs, verdicts, options) is HTML-escaped.
-- ``plots/NAME.png`` and ``plots/NAME.svg`` for every plot.
+  Wigner functions, Cross-check, Provenance. Plots are inline SVG (vector, text kept as
+  text), the style sheet is inline; the page loads nothing from the network. Every text
+  taken from the data (file names, model specs, verdicts, options, probe labels) is
+  HTML-escaped.
+- ``plots/NAME.svg`` for every plot (the same drawing as on the page).
 
 Conventions: photon numbers are mean photons per shot at the reference plane; ``alpha`` is
 the complex amplitude of the displacement and Wigner cross-sections are drawn against
@@ -24,19 +25,17 @@ axis (+ when Re(alpha) = 0); the smoothed curve is drawn from its real-axis poin
 """
 from __future__ import annotations
 
-import base64
 import html
 import json
 import math
 from pathlib import Path
 
-import jax
 import numpy as np
 
-from povmfit.models import choose_cutoff, povm_wigner
+from povmfit.models import banded_probe_distributions, choose_cutoff, povm_wigner
 
 from . import plots
-from ._io import atomic_write_bytes, atomic_write_text
+from ._io import atomic_write_text
 from .objective import compiled
 
 __all__ = ["write_report", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
@@ -82,9 +81,14 @@ def _probe_points(scan) -> dict:
     }
 
 
-def model_curves(scan, result) -> list[dict]:
+def model_curves(scan, result, theta=None) -> list[dict]:
     """Fitted outcome probabilities along the coherent photon number, at the (up to four)
-    most populated thermal levels of the scan. The fitted probe scale, if any, is applied."""
+    most populated thermal levels of the scan. The fitted probe scale, if any, is applied.
+
+    ``theta`` (n_outcomes, n_theta), optional: the fitted model's POVM. When it covers the
+    photon-number cutoff the curves need, q = P @ theta.T is formed in numpy (a model POVM's
+    column n does not depend on the cutoff); otherwise the compiled model is evaluated.
+    """
     levels, index = _thermal_levels(scan)
     populated = sorted(int(j) for j in np.argsort(-np.bincount(index, minlength=levels.size), kind="stable")[:_MAX_CURVE_LEVELS])
     top = float(np.max(scan.coherent_photons))
@@ -95,7 +99,11 @@ def model_curves(scan, result) -> list[dict]:
     coherent = np.tile(grid, len(populated)) * scale
     thermal = np.repeat(levels[populated], grid.size) * scale
     n_photons = choose_cutoff(coherent, thermal, 1e-10)
-    q = np.asarray(compiled(result.model, n_photons).probabilities(result.parameter_vector, coherent, thermal))
+    if theta is not None and np.shape(theta)[1] >= n_photons:
+        distributions = banded_probe_distributions(coherent, thermal, n_photons).dense()
+        q = distributions @ np.asarray(theta, dtype=float)[:, :n_photons].T
+    else:
+        q = np.asarray(compiled(result.model, n_photons).probabilities(result.parameter_vector, coherent, thermal))
     q = q.reshape(len(populated), grid.size, -1)
     return [{"level": j, "mean_photons": grid + levels[j], "probability": q[i]} for i, j in enumerate(populated)]
 
@@ -129,7 +137,7 @@ def _wigner_data(scan, cross: dict):
             reach = max(reach, float(np.max(np.abs(p["re_alpha"]))))
     reach = max(1.5, 1.1 * reach)
     grid = np.linspace(-reach, reach, 2 * _GRID_POINTS + 1)
-    values = np.asarray(jax.jit(povm_wigner)(theta, grid + 0j))
+    values = np.asarray(povm_wigner(theta, grid + 0j))
     return grid, values, points, curve
 
 
@@ -156,10 +164,8 @@ def _table(header: list[str], rows: list[list[str]], cls: str = "") -> str:
     return f'<table class="{_e(cls)}"><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>'
 
 
-def _figure_block(png: bytes, alt: str, caption: str) -> str:
-    data = base64.b64encode(png).decode("ascii")
-    return (f'<figure><img src="data:image/png;base64,{data}" alt="{_e(alt)}">'
-            f"<figcaption>{_e(caption)}</figcaption></figure>")
+def _figure_block(svg: str, caption: str) -> str:
+    return f"<figure>{plots.inline_svg(svg)}<figcaption>{_e(caption)}</figcaption></figure>"
 
 
 def _figures_section(sheet: dict) -> str:
@@ -271,8 +277,8 @@ padding:1rem 2rem;color:#1d1d1f;line-height:1.45}
 h1{border-bottom:2px solid #444;padding-bottom:.3rem}h2{margin-top:2.2rem;border-bottom:1px solid #bbb}
 table{border-collapse:collapse;margin:.6rem 0;font-size:.88rem}th,td{border:1px solid #ccc;padding:.25rem .5rem;
 text-align:left;vertical-align:top}th{background:#eef1f5}tbody tr:nth-child(even){background:#f8f9fb}
-table.wide{display:block;overflow-x:auto}figure{margin:1rem 0}figure img{max-width:100%;height:auto;
-border:1px solid #ddd}figcaption,.caption{font-size:.85rem;color:#444}.note{background:#fff6d6;
+table.wide{display:block;overflow-x:auto}figure{margin:1rem 0}figure svg{display:block;width:100%;
+height:auto;border:1px solid #ddd}figcaption,.caption{font-size:.85rem;color:#444}.note{background:#fff6d6;
 border-left:4px solid #e0a800;padding:.4rem .7rem}.verdict{font-weight:600}code{font-size:.8rem;word-break:break-all}
 nav a{margin-right:.8rem}
 """
@@ -296,37 +302,34 @@ def _saturation(cross: dict) -> str:
 
 
 # ----- the report ------------------------------------------------------------------------------
-def _save_plot(out_dir: Path, name: str, fig, files: dict) -> bytes:
-    png = plots.figure_bytes(fig, "png")
-    for fmt, data in (("png", png), ("svg", plots.figure_bytes(fig, "svg"))):
-        path = out_dir / "plots" / f"{name}.{fmt}"
-        atomic_write_bytes(path, data)
-        files[f"plot_{name}_{fmt}"] = path
-    return png
+def _save_plot(out_dir: Path, name: str, svg: str, files: dict) -> str:
+    path = out_dir / "plots" / f"{name}.svg"
+    atomic_write_text(path, svg)
+    files[f"plot_{name}_svg"] = path
+    return svg
 
 
 def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) -> dict:
-    """Write ``report.html`` and ``plots/*.png|svg`` into ``out_dir``; return {name: Path}."""
+    """Write ``report.html`` and ``plots/*.svg`` into ``out_dir``; return {name: Path}."""
     out_dir = Path(out_dir)
     files: dict = {}
     n_outcomes = scan.n_outcomes
+    model_theta, model_se = np.asarray(cross["model_theta"]), np.asarray(cross["model_stderr"])
 
     probes = _probe_points(scan)
-    fig = plots.outcome_probabilities_figure(probes, model_curves(scan, result), n_outcomes)
-    png_prob = _save_plot(out_dir, "outcome_probabilities", fig, files)
+    curves = model_curves(scan, result, model_theta)
+    svg_prob = _save_plot(out_dir, "outcome_probabilities", plots.outcome_probabilities_figure(probes, curves, n_outcomes), files)
 
     z = standardised_residuals(scan, result.predicted)
-    fig = plots.residuals_figure(probes["mean_photons"], z, list(scan.labels) if scan.labels else None)
-    png_res = _save_plot(out_dir, "residuals", fig, files)
+    labels = list(scan.labels) if scan.labels else None
+    svg_res = _save_plot(out_dir, "residuals", plots.residuals_figure(probes["mean_photons"], z, labels), files)
 
     recon = cross["reconstruction"]
-    model_theta, model_se = np.asarray(cross["model_theta"]), np.asarray(cross["model_stderr"])
     fig = plots.povm_figure(model_theta, model_se, np.asarray(recon.theta), np.asarray(recon.stderr), np.asarray(recon.constrained))
-    png_povm = _save_plot(out_dir, "povm", fig, files)
+    svg_povm = _save_plot(out_dir, "povm", fig, files)
 
     grid, values, points, smoothed = _wigner_data(scan, cross)
-    fig = plots.wigner_figure(grid, values, points, smoothed)
-    png_wig = _save_plot(out_dir, "wigner", fig, files)
+    svg_wig = _save_plot(out_dir, "wigner", plots.wigner_figure(grid, values, points, smoothed), files)
 
     levels = ", ".join(f"{t:.3g}" for t in probes["levels"])
     constrained = np.flatnonzero(recon.constrained)
@@ -335,17 +338,17 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
     sections = [
         ("Figures", _figures_section(sheet)),
         ("Model verdict", _verdict_section(sheet, comparison)),
-        ("Outcome probabilities", _figure_block(png_prob, "observed outcome frequencies and fitted model", (
+        ("Outcome probabilities", _figure_block(svg_prob, (
             "Observed outcome frequencies (points, Wilson 1-sigma intervals) against the probe mean photon number, "
             "with the fitted model (lines); one colour per outcome. Filled circles and solid lines: coherent probes; "
             f"other markers (hollow) and line styles: displaced-thermal probes. Thermal parts in this scan: {levels} photons."))),
-        ("Residuals", _figure_block(png_res, "standardised residuals", (
+        ("Residuals", _figure_block(svg_res, (
             "Standardised residuals (observed - expected) / sqrt(shots q (1 - q)) per probe and outcome; dashed lines "
             "at +-2. An adequate model leaves them scattered around zero without structure."))),
-        ("POVM", _figure_block(png_povm, "parametric and model-free POVM", (
+        ("POVM", _figure_block(svg_povm, (
             "P(outcome k | n photons): fitted model (line, band = 95 % delta-method interval) and model-free "
             f"reconstruction (points, bootstrap standard errors), drawn only for photon numbers the probes constrain ({span})."))),
-        ("Wigner functions", _figure_block(png_wig, "Wigner cross-sections of the POVM elements", (
+        ("Wigner functions", _figure_block(svg_wig, (
             "Wigner functions of the POVM elements along the real axis. Axis convention: alpha is the complex amplitude "
             "of the displacement, the horizontal axis is Re(alpha) at Im(alpha) = 0, and the quadrature is "
             "q = sqrt(2) Re(alpha). Normalisation: the identity has W = 1/pi. Line: model; "

@@ -7,6 +7,7 @@ import re
 import shutil
 import subprocess
 import types
+from xml.etree import ElementTree
 
 import numpy as np
 import pytest
@@ -70,19 +71,26 @@ def report_inputs(scan_path):
 
 
 @pytest.fixture(scope="module")
-def direct_report(tmp_path_factory):
-    """A report written by write_report from parts, with hostile text in label and options."""
-    from povmfit.fitting.report import write_report
-
+def direct_inputs(tmp_path_factory):
+    """write_report's arguments, with hostile text in a probe label and in the options."""
     folder = tmp_path_factory.mktemp("direct")
     scan_path = write_scan_csv(folder / "scan.csv", label_of_first="<i>dark</i>")
-    return write_report(folder / "out", *report_inputs(scan_path))
+    return folder, report_inputs(scan_path)
+
+
+@pytest.fixture(scope="module")
+def direct_report(direct_inputs):
+    """A report written by write_report from parts."""
+    from povmfit.fitting.report import write_report
+
+    folder, inputs = direct_inputs
+    return write_report(folder / "out", *inputs)
 
 
 def check_page(page: str):
     for heading in HEADINGS:
         assert f"<h2>{heading}</h2>" in page, heading
-    assert len(re.findall(r"<img src=\"data:image/png;base64,", page)) >= 4
+    assert len(re.findall(r"<figure><svg ", page)) == 4, "four plots drawn inline as SVG"
     assert not re.search(r"https?://", page), "the report must not reference the network"
     assert "Re(alpha)" in page and "q = sqrt(2) Re(alpha)" in page
     for column in ("dAIC", "dBIC", "weight", "CV"):
@@ -98,10 +106,13 @@ def test_write_report_directly_escapes_text_and_writes_plots(direct_report):
     assert "points: pointwise values from displaced-thermal probes" in page  # alpha = 0 and 1 have 2+ levels
     assert "15 numbers (see datasheet.json)" in page  # a long nested list is summarised, not dumped
     assert "probe photon numbers taken as exact" in page  # the calibration note (no --calibration-uncertainty)
+    assert "&lt;i&gt;dark&lt;/i&gt;" in page and "<i>dark</i>" not in page  # probe label on the residual axis
     for name in ("outcome_probabilities", "residuals", "povm", "wigner"):
-        png, svg = files[f"plot_{name}_png"], files[f"plot_{name}_svg"]
-        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and png.parent.name == "plots"
-        assert b"<svg" in svg.read_bytes()[:2000]
+        svg = files[f"plot_{name}_svg"]
+        assert svg.parent.name == "plots"
+        root = ElementTree.fromstring(svg.read_text())  # a standalone, well-formed SVG document
+        assert root.tag == "{http://www.w3.org/2000/svg}svg"
+        assert svg.read_text().replace(' xmlns="http://www.w3.org/2000/svg"', "", 1).strip() in page
     assert not list(files["report"].parent.rglob("*.tmp")), "atomic writes leave no temporary files"
 
 
@@ -114,6 +125,43 @@ def test_standardised_residuals_and_wilson_interval():
     lo, hi = wilson_interval(0, 100)
     # Wilson 1927 at z = 1: upper end for 0 successes is 1/(n + 1) (common practice, by hand)
     assert lo == 0.0 and hi == pytest.approx(1 / 101)
+
+
+def test_model_curves_from_the_fitted_povm_match_the_compiled_model(direct_inputs, monkeypatch):
+    from povmfit.fitting import report
+
+    _, (scan, result, _, _, _) = direct_inputs
+    reference = report.model_curves(scan, result)  # the compiled JAX model on the curve grid
+    theta = np.asarray(result.model.povm(result.parameter_vector, 200))  # well above any cutoff here
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the curves should come from the given POVM, not from the compiled model")
+
+    monkeypatch.setattr(report, "compiled", refuse)
+    curves = report.model_curves(scan, result, theta)
+    assert [c["level"] for c in curves] == [c["level"] for c in reference]
+    for mine, theirs in zip(curves, reference):
+        np.testing.assert_allclose(mine["mean_photons"], theirs["mean_photons"])
+        # same probabilities by two routes: numpy P @ theta.T (probe windows trimmed at 1e-12
+        # of mass) against the compiled model (independent computation)
+        np.testing.assert_allclose(mine["probability"], theirs["probability"], rtol=0, atol=1e-10)
+        np.testing.assert_allclose(mine["probability"].sum(axis=1), 1.0, atol=1e-9)  # columns of a POVM sum to 1
+
+
+def test_symmetric_log_axis_and_ticks_by_hand():
+    from povmfit.fitting.plots import _Axis, _linear_ticks, _symlog_ticks
+
+    # linear part 0..0.1 takes half a decade; 0.1..10 two decades: 2.5 units over 100 px (by hand)
+    axis = _Axis(0.0, 10.0, 100.0, threshold=0.1)
+    np.testing.assert_allclose(axis([0.0, 0.05, 0.1, 1.0, 10.0]), [0.0, 10.0, 20.0, 60.0, 100.0])
+    flipped = _Axis(-1.0, 1.0, 50.0, flip=True)  # vertical pixel axes grow downwards
+    np.testing.assert_allclose(flipped([-1.0, 0.0, 1.0]), [50.0, 25.0, 0.0])
+    # a 0.64 span wants ~5 ticks: step 0.2 (1-2-2.5-5 rule, common practice, by hand)
+    assert _linear_ticks(-0.23, 0.41, 5) == [(-0.2, "\u22120.2"), (0.0, "0.0"), (0.2, "0.2"), (0.4, "0.4")]
+    assert [t for _, t in _linear_ticks(0.0, 1.0, 4)] == ["0.00", "0.25", "0.50", "0.75", "1.00"]
+    major, minor = _symlog_ticks(7.0, 0.3)  # fewer than three decades: 1-2-5 steps are labelled
+    assert [t for _, t in major] == ["0", "0.5", "1", "2", "5"]
+    assert 3.0 in minor and 0.5 not in minor
 
 
 def test_wigner_points_are_rotated_onto_the_real_axis():
