@@ -13,12 +13,12 @@ Figures (all per shot unless a unit says otherwise):
 from __future__ import annotations
 
 import datetime as _dt
+from dataclasses import replace
 
 import numpy as np
 
 import povmfit
 
-from .objective import povm_and_jacobian
 
 __all__ = ["figures", "datasheet_document", "worst_residuals", "model_block", "SCHEMA"]
 
@@ -65,22 +65,17 @@ def figures(result, gate_duration_s: float | None = None) -> dict:
         extra["note"] = CALIBRATION_EXCLUDED
     out[eff] = _entry(result.values[eff], result.stderr[eff], result.ci95[eff], **extra)
 
-    povm = povm_and_jacobian(model, result.n_photons)
-    theta, jac = povm(result.parameter_vector)
+    theta, jac = result.povm_and_jacobian(result.n_photons)
     p_vac = 1.0 - float(theta[0, 0])
-    grad = -np.asarray(jac[0, 0])
+    grad = -jac[0, 0]
     n_model = len(model.parameter_names)
     se_vac = float(np.sqrt(max(grad @ result.covariance[:n_model, :n_model] @ grad, 0.0)))
     dark = _dark_name(result)
     if dark is None:
         ci_vac = (p_vac, p_vac)
     else:
-        index = model.parameter_names.index(dark)
-        ends = []
-        for end in result.ci95[dark]:
-            x = np.array(result.parameter_vector)
-            x[index] = end
-            ends.append(1.0 - float(povm(x)[0][0, 0]))
+        ends = [1.0 - float(replace(result, values={**result.values, dark: end}).povm_and_jacobian(result.n_photons)[0][0, 0])
+                for end in result.ci95[dark]]
         ci_vac = (min(ends), max(ends))
     out["vacuum_click_probability"] = _entry(p_vac, se_vac, ci_vac)
     if dark is None:

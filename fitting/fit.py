@@ -60,6 +60,8 @@ class FitResult:
         calibration_uncertainty: relative 1-sigma probe calibration width, or None.
         weighting: "deviance" or "pearson".
         bounds: {name: (lo, hi)} of every fitted parameter, as the optimiser used them.
+        compute_model: the model whose compiled code computed the fit (``model`` itself or a
+            larger model of its family with the missing features switched off).
     """
 
     model: DetectorModel
@@ -83,11 +85,22 @@ class FitResult:
     calibration_uncertainty: float | None
     weighting: str
     bounds: dict
+    compute_model: DetectorModel | None = None
     bootstrap: dict | None = field(default=None)
 
     @property
     def parameter_vector(self) -> np.ndarray:
         return np.array([self.values[n] for n in self.model.parameter_names])
+
+    def povm_and_jacobian(self, n_photons: int):
+        """Fitted POVM theta[k, n] and d theta / d (model parameters), shapes (K, N) and
+        (K, N, P), from the compiled code the fit used."""
+        compute = self.compute_model or self.model
+        names = list(compute.parameter_names)
+        full = np.array([self.values[n] if n in self.values else _null_value(n) for n in names])
+        theta, jac = povm_and_jacobian(compute, n_photons)(full)
+        own = [names.index(n) for n in self.model.parameter_names]
+        return np.asarray(theta), np.asarray(jac)[..., own]
 
 
 def check_identifiable(scan, model: DetectorModel) -> None:
@@ -472,6 +485,7 @@ def fit_scan(
         calibration_uncertainty=calibration_uncertainty,
         weighting=weighting,
         bounds={n: tuple(problem.bounds[n]) for n in names},
+        compute_model=compute_model or model,
     )
 
 

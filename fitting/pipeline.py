@@ -22,7 +22,6 @@ from .compare import family_compute_model, candidate_models, compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
-from .objective import povm_and_jacobian
 from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors"]
@@ -41,10 +40,10 @@ def _parse_model_option(text: str, option: str = "--model"):
 
 def model_povm_with_errors(result, n_photons: int):
     """Model POVM theta[k, n] and its delta-method standard errors (combined covariance)."""
-    theta, jac = (np.asarray(a) for a in povm_and_jacobian(result.model, n_photons)(result.parameter_vector))
+    theta, jac = result.povm_and_jacobian(n_photons)
     n_model = len(result.model.parameter_names)
     var = np.einsum("kni,ij,knj->kn", jac, result.covariance[:n_model, :n_model], jac)
-    return np.asarray(theta), np.sqrt(np.clip(var, 0, None))
+    return theta, np.sqrt(np.clip(var, 0, None))
 
 
 def _select_model(scan, args):
@@ -183,7 +182,7 @@ def model_seen_through_reconstruction(scan, result, reconstruction, seed):
     seeded) and reconstructed with the data's regularisation strength, so the smoothing bias
     and the constraint effects of the reconstruction act on the model exactly as on the data.
     """
-    from .reconstruct import build_layout, solve_povm, weighted_operator
+    from .reconstruct import build_layout, solve_povm, solve_povm_batch, weighted_operator
 
     shots = np.asarray(scan.shots)
     operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
@@ -194,10 +193,8 @@ def model_seen_through_reconstruction(scan, result, reconstruction, seed):
     # (checked against cold starts), only the time does
     start, _, _ = solve_povm(operator, q, reconstruction.regularisation)
     rng = np.random.default_rng([seed, 1])
-    draws = np.stack([
-        solve_povm(operator, rng.multinomial(shots, q) / shots[:, None], reconstruction.regularisation, start, rtol=1e-11)[0]
-        for _ in range(CROSS_CHECK_SIMULATIONS)
-    ])
+    simulated = np.stack([rng.multinomial(shots, q) for _ in range(CROSS_CHECK_SIMULATIONS)]) / shots[:, None]
+    draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, start, rtol=1e-11)
     return draws.mean(axis=0), draws.std(axis=0, ddof=1)
 
 
