@@ -222,7 +222,7 @@ def _cross_check_section(scan, result, parts, seed: int = 0) -> dict:
     if parts["phase_test"] is not None:
         summary["phase_insensitivity"] = parts["phase_test"].to_dict()
     grid = smoothed.alpha if smoothed is not None else (pointwise.alpha if pointwise is not None else None)
-    model_wigner = None if grid is None else np.asarray(povm_wigner(theta_model, jnp.asarray(grid)))
+    model_wigner = None if grid is None else np.asarray(povm_wigner(theta_model, np.asarray(grid)))
 
     def write(out_dir):
         extra = []

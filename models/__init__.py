@@ -39,7 +39,7 @@ from ._stages import (
     split_pixel_matrix,
     uniform_pixel_matrix,
 )
-from ._wigner import fock_wigner_table, povm_wigner, saturating_wigner
+from ._wigner import fock_wigner_table, fock_wigner_table_numpy, povm_wigner, saturating_wigner
 
 __all__ = [
     "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
@@ -47,7 +47,7 @@ __all__ = [
     "fock_distribution", "probe_distributions", "squeezed_vacuum_distribution", "tail_mass",
     "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",
     "pixel_crosstalk_matrix", "poisson_dark_matrix", "readout_matrix", "saturation_matrix",
-    "split_pixel_matrix", "uniform_pixel_matrix", "fock_wigner_table", "povm_wigner",
+    "split_pixel_matrix", "uniform_pixel_matrix", "fock_wigner_table", "fock_wigner_table_numpy", "povm_wigner",
     "saturating_wigner", "BandedProbeMatrix", "banded_probe_distributions", "ResponseTable",
     "apply_pixel_crosstalk", "response_table", "sample_counts", "sample_outcomes",
     "split_array_patterns", "uniform_subset_patterns",

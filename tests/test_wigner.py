@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import scipy.special
 
-from povmfit.models import fock_wigner_table, parse_model_spec, povm_wigner, saturating_wigner
+from povmfit.models import fock_wigner_table, fock_wigner_table_numpy, parse_model_spec, povm_wigner, saturating_wigner
 
 ALPHAS = np.array([0.0, 0.1 + 0.05j, -0.4j, 0.7 - 0.7j, 1.5, -2.2 + 0.9j, 3.5j, 5.0 - 1.0j])
 
@@ -21,10 +21,11 @@ def _wigner_fock_mpmath(n, alpha):
         return float(2 / mpmath.pi * (-1) ** n * mpmath.exp(-x / 2) * mpmath.laguerre(n, 0, x))
 
 
-def test_fock_wigner_table_matches_mpmath():
+@pytest.mark.parametrize("table_of", [fock_wigner_table, fock_wigner_table_numpy], ids=["jax", "numpy"])
+def test_fock_wigner_table_matches_mpmath(table_of):
     # Source: mpmath (general-purpose reference library); W_n from the Laguerre form above.
     n_photons = 80
-    table = np.asarray(fock_wigner_table(ALPHAS, n_photons))
+    table = np.asarray(table_of(ALPHAS, n_photons))
     assert table.shape == (n_photons, ALPHAS.size)
     for n in range(n_photons):
         for i, alpha in enumerate(ALPHAS):
@@ -117,3 +118,14 @@ def test_povm_wigner_equals_saturating_wigner_when_constant_beyond_m():
     np.testing.assert_allclose(
         np.asarray(povm_wigner(extended, ALPHAS[:6])), np.asarray(saturating_wigner(head[:, : m + 1], ALPHAS[:6])), rtol=0, atol=1e-12
     )
+
+
+def test_saturating_wigner_numpy_and_jax_paths_agree():
+    # Source: the JAX path, itself checked against mpmath and the parity formula above.
+    import jax.numpy as jnp
+
+    theta = parse_model_spec("array:3+dark").povm(np.array([0.7, 0.01]), 30)
+    alpha = np.linspace(-3, 3, 13) + 0.2j
+    numpy_values = saturating_wigner(np.asarray(theta), alpha)
+    assert isinstance(numpy_values, np.ndarray)
+    np.testing.assert_allclose(numpy_values, np.asarray(saturating_wigner(theta, jnp.asarray(alpha))), rtol=1e-12, atol=1e-15)
