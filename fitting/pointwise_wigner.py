@@ -15,25 +15,27 @@ design matrix is T[j, n] = P_th(n; nbar_j) for n < M and T[j, M] = sum_{n>=M} P_
 (normalisation: identity -> 1/pi, vacuum projector -> 2/pi at the origin). The p are found
 by weighted least squares (weights = shots) under 0 <= p <= 1: ``method="simplex"`` (default)
 also imposes sum_k p_kn = 1, so the values of all outcomes add up to 1/pi exactly;
-``method="box"`` solves each outcome alone with scipy.optimize.lsq_linear. M defaults to the
+``method="box"`` solves each outcome alone (exact bounded least squares,
+:func:`box_least_squares`). M defaults to the
 number of thermal levels minus one (as many unknowns as levels). Errors: seeded parametric
 bootstrap (multinomial counts from the fitted Q).
 """
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
 
-from povmfit.models import saturating_wigner
+from povmfit.models import fock_wigner_table_numpy
 
 from .reconstruct import Progress
 
 __all__ = [
     "PointwiseWigner", "SmoothedWigner", "PhaseTest", "pointwise_wigner", "smoothed_wigner",
-    "phase_insensitivity_test", "thermal_design", "wigner_from_p", "displacement_groups",
+    "phase_insensitivity_test", "thermal_design", "wigner_from_p", "displacement_groups", "box_least_squares",
 ]
 
 _DECIMALS = 9  # probe settings equal to 9 decimals count as the same setting
@@ -71,10 +73,60 @@ def displacement_groups(coherent, phase=None):
     return [(a, ph, np.nonzero((coherent == a) & (phase == ph))[0]) for a, ph in keys]
 
 
+_ENUMERATE_UP_TO = 6  # unknowns up to which box problems are solved by visiting every face
+
+
+def box_least_squares(design, targets) -> np.ndarray:
+    """min ||design x - t||^2 over 0 <= x <= 1 for every column t of ``targets``.
+
+    Shapes: design (n_rows, n), targets (n_rows, n_targets); returns (n_targets, n). Exact:
+    for n <= 6 every face of the box (each unknown free, at 0 or at 1) is visited, the
+    least-squares point of each face is computed for all targets at once, and the best
+    feasible one is kept; an optimum with the most unknowns at a bound is the unique
+    least-squares point of its face (a null direction of the face would lead to a bound), so
+    it is among them. Targets whose unconstrained optimum is inside the box skip the faces.
+    Larger n: scipy's bounded-variable least squares (BVLS), one target at a time, clipped
+    to the box (it can step outside by rounding).
+    """
+    design = np.asarray(design, dtype=float)
+    targets = np.asarray(targets, dtype=float)
+    n = design.shape[1]
+    if n > _ENUMERATE_UP_TO:
+        solved = [optimize.lsq_linear(design, t, bounds=(0.0, 1.0), method="bvls").x for t in targets.T]
+        return np.clip(np.stack(solved), 0.0, 1.0)  # BVLS may step outside by rounding
+    out = np.linalg.lstsq(design, targets, rcond=None)[0].T  # unconstrained minimum: optimal where inside
+    inside = np.all((out >= 0.0) & (out <= 1.0), axis=1)
+    if inside.all():
+        return out
+    out[~inside] = _box_least_squares_by_faces(design, targets[:, ~inside])
+    return out
+
+
+def _box_least_squares_by_faces(design, targets) -> np.ndarray:
+    """The face enumeration of :func:`box_least_squares` (n <= 6 unknowns)."""
+    n = design.shape[1]
+    best = np.full(targets.shape[1], np.inf)
+    out = np.zeros((targets.shape[1], n))
+    for face in itertools.product((0, 1, 2), repeat=n):  # 0: at 0, 1: at 1, 2: free
+        face = np.asarray(face)
+        free = face == 2
+        fixed = np.where(face == 1, 1.0, 0.0)
+        shifted = targets - (design @ fixed)[:, None]
+        x = np.tile(fixed, (targets.shape[1], 1))
+        if free.any():
+            x[:, free] = np.linalg.lstsq(design[:, free], shifted, rcond=None)[0].T
+        feasible = np.all((x >= 0.0) & (x <= 1.0), axis=1)
+        value = np.sum((design @ x.T - targets) ** 2, axis=0)
+        better = feasible & (value < best)
+        best = np.where(better, value, best)
+        out[better] = x[better]
+    return out
+
+
 def _solve_box(design, weights, q):
+    """Per-outcome box problems; q may hold several frequency tables side by side: (rows, m*K)."""
     root = np.sqrt(weights)[:, None]
-    return np.stack([optimize.lsq_linear(root * design, root[:, 0] * q[:, k], bounds=(0.0, 1.0), method="bvls").x
-                     for k in range(q.shape[1])])
+    return box_least_squares(root * design, root * q)
 
 
 def _solve_simplex(design, weights, q):
@@ -195,17 +247,29 @@ def pointwise_wigner(coherent, thermal, counts, phase=None, *, saturation: int |
 
 
 def _bootstrap_p(p, designs, weights, shots, method, replicates, rng, quiet):
-    """(replicates, n_points, n_outcomes, M+1) re-solved p from multinomial resamples."""
+    """(replicates, n_points, n_outcomes, M+1) re-solved p from multinomial resamples.
+
+    The counts are drawn replicate by replicate, point by point (in that order); the box
+    problems of all replicates of one point are then solved together.
+    """
     if replicates <= 1:
         return np.empty((0,) + p.shape)
-    progress = Progress(replicates, "bootstrap (Wigner)", quiet)
+    expected = []
+    for t, point in zip(designs, p):
+        q = np.clip(t @ point.T, 0.0, None)
+        expected.append(q / q.sum(axis=1, keepdims=True))
+    draws = [[rng.multinomial(s, q) / s[:, None] for s, q in zip(shots, expected)] for _ in range(replicates)]
+    progress = Progress(len(designs), "bootstrap (Wigner)", quiet)
     out = np.empty((replicates,) + p.shape)
-    for r in range(replicates):
-        for i, (t, w, s) in enumerate(zip(designs, weights, shots)):
-            q = np.clip(t @ p[i].T, 0.0, None)
-            q /= q.sum(axis=1, keepdims=True)
-            out[r, i] = _solve(t, w, rng.multinomial(s, q) / s[:, None], method)
-        progress.update(r + 1)
+    n_outcomes = p.shape[1]
+    for i, (t, w) in enumerate(zip(designs, weights)):
+        tables = [draw[i] for draw in draws]
+        if method == "box" or n_outcomes <= 2:  # see _solve: the box solution is used
+            solved = _solve_box(t, w, np.concatenate(tables, axis=1))  # (replicates*K, M+1)
+            out[:, i] = solved.reshape(replicates, n_outcomes, -1)
+        else:
+            out[:, i] = [_solve(t, w, table, method) for table in tables]
+        progress.update(i + 1)
     return out
 
 
@@ -240,17 +304,28 @@ class SmoothedWigner:
         }
 
 
-def _basis(alpha, saturation):
-    """(n_points, M+1): W of the unit vector e_n in the saturating form, at each alpha."""
-    return np.asarray(saturating_wigner(np.eye(saturation + 1), np.asarray(alpha))).T
+def _bases(alpha, saturations) -> dict:
+    """{M: (n_points, M+1) W of the unit vector e_n in the saturating form} for every M given.
+
+    e_n (n < M) gives the Fock term W_n(alpha); e_M gives 1/pi - sum_{n<M} W_n(alpha)
+    (``saturating_wigner`` with theta = e_n); one table of W_n serves every M.
+    """
+    top = max(saturations)
+    table = fock_wigner_table_numpy(np.asarray(alpha), top).T  # (n_points, top)
+    return {m: np.concatenate([table[:, :m], 1.0 / math.pi - table[:, :m].sum(axis=1, keepdims=True)], axis=1)
+            for m in saturations}
 
 
 def _fit_saturating(values, sigma, basis):
-    """Weighted bounded least squares per outcome: theta (K, M+1) and chi-square."""
+    """Weighted bounded least squares per outcome.
+
+    values: (n_sets, K, n_points) sets of pointwise values sharing the errors sigma (K, n_points).
+    Returns theta (n_sets, K, M+1) and the chi-square of every set (n_sets,).
+    """
     root = 1.0 / sigma
-    theta = np.stack([optimize.lsq_linear(root[k][:, None] * basis, root[k] * values[k], bounds=(0.0, 1.0)).x
-                      for k in range(values.shape[0])])
-    chi_square = float(np.sum(((theta @ basis.T - values) * root) ** 2))
+    theta = np.stack([box_least_squares(root[k][:, None] * basis, (root[k] * values[:, k]).T)
+                      for k in range(sigma.shape[0])], axis=1)
+    chi_square = np.sum(((theta @ basis.T - values) * root) ** 2, axis=(1, 2))
     return theta, chi_square
 
 
@@ -267,23 +342,27 @@ def smoothed_wigner(pointwise: PointwiseWigner, saturation: int | None = None, n
     values = pointwise.values
     sigma = np.maximum(pointwise.stderr, 1e-3 / math.pi)
     radii = np.unique(np.round(np.abs(pointwise.alpha), _DECIMALS)).size
-    candidates = {}
-    if saturation is None:
-        top = max(1, min(max_saturation, radii - 1))
-        for m in range(1, top + 1):
-            _, chi_square = _fit_saturating(values, sigma, _basis(pointwise.alpha, m))
-            candidates[m] = chi_square + 2.0 * values.shape[0] * (m + 1)
-        saturation = min(candidates, key=candidates.get)
-    basis = _basis(pointwise.alpha, saturation)
-    theta, chi_square = _fit_saturating(values, sigma, basis)
-    dof = max(values.size - theta.size, 0)
     grid = np.linspace(0.0, np.abs(pointwise.alpha).max(), n_grid).astype(complex)
     alpha = np.concatenate([pointwise.alpha, grid])
-    evaluation = _basis(alpha, saturation)
-    replicas = [
-        _fit_saturating(replica, sigma, basis)[0] @ evaluation.T for replica in pointwise.replicate_values
-    ]
-    stderr = np.std(replicas, axis=0, ddof=1) if len(replicas) > 1 else np.zeros((values.shape[0], alpha.size))
+    tried = [saturation] if saturation is not None else list(range(1, max(1, min(max_saturation, radii - 1)) + 1))
+    bases = _bases(alpha, tried)  # rows: the pointwise displacements, then the grid
+    n_points = pointwise.alpha.size
+    candidates = {}
+    if saturation is None:
+        for m in tried:
+            _, chi_square = _fit_saturating(values[None], sigma, bases[m][:n_points])
+            candidates[m] = float(chi_square[0]) + 2.0 * values.shape[0] * (m + 1)
+        saturation = min(candidates, key=candidates.get)
+    evaluation = bases[saturation]
+    basis = evaluation[:n_points]
+    theta, chi_square = _fit_saturating(values[None], sigma, basis)
+    theta, chi_square = theta[0], float(chi_square[0])
+    dof = max(values.size - theta.size, 0)
+    replicas = pointwise.replicate_values
+    if len(replicas) > 1:
+        stderr = np.std(_fit_saturating(np.asarray(replicas), sigma, basis)[0] @ evaluation.T, axis=0, ddof=1)
+    else:
+        stderr = np.zeros((values.shape[0], alpha.size))
     return SmoothedWigner(theta, int(saturation), chi_square, int(dof),
                           float(stats.chi2.sf(chi_square, dof)) if dof > 0 else float("nan"),
                           alpha, theta @ evaluation.T, stderr, candidates)

@@ -6,7 +6,10 @@ import math
 import numpy as np
 import pytest
 
+from scipy import optimize
+
 from povmfit.fitting.pointwise_wigner import (
+    box_least_squares,
     phase_insensitivity_test,
     pointwise_wigner,
     smoothed_wigner,
@@ -45,6 +48,24 @@ def test_thermal_design_rows_are_distributions():
     design = thermal_design([0.0, 0.3, 2.0], 4)
     np.testing.assert_allclose(design.sum(axis=1), 1.0, rtol=1e-15)  # geometric series sums to 1
     assert design[0, 0] == 1.0 and design[2, 4] == pytest.approx((2 / 3) ** 4)  # tail mass r^M
+
+
+@pytest.mark.parametrize("n_rows, n, rank", [(4, 4, 4), (9, 3, 3), (6, 5, 3), (8, 7, 7)])
+def test_box_least_squares_matches_scipy_bvls(n_rows, n, rank):
+    """Reference: scipy.optimize.lsq_linear (BVLS, exact active-set method) target by target.
+    Targets are spread so that some optima lie inside the box and many on its faces; the
+    rank-deficient design has optima that are not unique, so the objectives are compared."""
+    rng = np.random.default_rng(n_rows * 10 + n)
+    design = rng.normal(size=(n_rows, rank)) @ rng.normal(size=(rank, n))
+    targets = design @ rng.uniform(-0.5, 1.5, size=(n, 40)) + 0.1 * rng.normal(size=(n_rows, 40))
+    ours = box_least_squares(design, targets)
+    assert np.all((ours >= 0.0) & (ours <= 1.0))
+    for x, t in zip(ours, targets.T):
+        reference = optimize.lsq_linear(design, t, bounds=(0.0, 1.0), method="bvls", tol=1e-14).x
+        value, best = np.sum((design @ x - t) ** 2), np.sum((design @ reference - t) ** 2)
+        assert value == pytest.approx(best, rel=1e-9, abs=1e-12)  # both exact: rounding only
+        if rank == n:  # unique optimum
+            np.testing.assert_allclose(x, reference, atol=1e-8)
 
 
 def test_abel_sum_of_a_saturating_sequence():

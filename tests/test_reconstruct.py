@@ -16,6 +16,7 @@ from povmfit.fitting.reconstruct import (
     project_columns_to_simplex,
     reconstruct_povm,
     solve_povm,
+    solve_povm_batch,
     weighted_operator,
 )
 from povmfit.models import banded_probe_distributions, choose_cutoff, parse_model_spec, probe_distributions
@@ -42,8 +43,11 @@ def _bisection_projection(v):
     return np.maximum(v - 0.5 * (lo + hi), 0)
 
 
-def test_simplex_projection_matches_bisection():
-    v = np.random.default_rng(0).normal(size=(5, 40)) * 2
+@pytest.mark.parametrize("n_outcomes, decimals", [(5, None), (20, None), (9, 0)])
+def test_simplex_projection_matches_bisection(n_outcomes, decimals):
+    v = np.random.default_rng(0).normal(size=(n_outcomes, 40)) * 2
+    if decimals is not None:  # many ties within a column
+        v = np.round(v, decimals)
     projected = np.asarray(project_columns_to_simplex(v))
     expected = np.stack([_bisection_projection(v[:, j]) for j in range(v.shape[1])], axis=1)
     np.testing.assert_allclose(projected, expected, atol=1e-12)  # bisection to 2^-200: exact in float64
@@ -90,6 +94,34 @@ def test_solver_matches_cvxpy_objective(relative_g):
     assert converged
     assert ours_value == pytest.approx(reference_value, rel=1e-6)  # requirement: equal to 1e-6 relative
     assert np.all(ours >= 0) and np.allclose(ours.sum(axis=0), 1.0, atol=1e-12)
+
+
+def test_batched_solves_agree_with_single_solves():
+    """Source: the single solve (checked against cvxpy above). Seven problems (two batches, the
+    second padded) with their own weights, frequencies, g, starts and tolerances: each must end
+    where it ends alone, iteration count included, since a member that has met its stopping
+    rule no longer moves."""
+    coherent = np.linspace(0.0, 6.0, 20)
+    thermal = np.zeros_like(coherent)
+    _, counts = simulate("array:2+dark", {"efficiency": 0.6, "dark_probability": 0.03}, coherent, thermal, 5000, seed=4)
+    frequencies = counts / counts.sum(axis=1, keepdims=True)
+    layout = build_layout(coherent, thermal, choose_cutoff(coherent, thermal))
+    rng = np.random.default_rng(8)
+    ops = [weighted_operator(layout, np.where(rng.random(coherent.size) < 0.2, 0.0, rng.uniform(0.5, 2.0, coherent.size)))
+           for _ in range(7)]
+    tables = np.stack([rng.multinomial(5000, f) / 5000 for f in [frequencies] * 7])
+    g = ops[0].scale * np.array([1e-1, 1e-3, 1e-2, 1e-4, 1e-1, 1e-3, 1e-2])
+    rtol = np.array([1e-10, 1e-10, 1e-12, 1e-11, 1e-10, 1e-12, 1e-11])
+    starts = np.asarray(project_columns_to_simplex(rng.normal(size=(7, 3, layout.n_photons))))
+    thetas, iterations, converged = solve_povm_batch(ops, tables, g, starts, rtol)
+    assert iterations.min() != iterations.max()  # members stop at different times
+    for i in range(7):
+        alone, its, ok = solve_povm(ops[i], tables[i], g[i], starts[i], rtol[i])
+        assert (iterations[i], converged[i]) == (its, ok)
+        np.testing.assert_allclose(thetas[i], alone, atol=1e-12)  # same iterates up to rounding
+    shared, _, _ = solve_povm_batch(ops[0], frequencies, g[:3])  # one operator and data for all
+    for i in range(3):
+        np.testing.assert_allclose(shared[i], solve_povm(ops[0], frequencies, g[i])[0], atol=1e-12)
 
 
 def test_block_layout_gives_the_dense_solution():

@@ -1,0 +1,443 @@
+"""Constrained least-squares solver behind the model-free POVM reconstruction.
+
+Problem (Lundeen et al., Nature Physics 5, 27 (2009); Feito et al., New J. Phys. 11, 093038
+(2009)), with per-probe weights w_p:
+
+    minimise  sum_p w_p sum_k (f[p, k] - sum_n F[p, n] theta[k, n])^2
+              + g sum_k sum_n (theta[k, n] - theta[k, n+1])^2
+    subject to theta[k, n] >= 0 and sum_k theta[k, n] = 1 for every n,
+
+where f are the observed outcome frequencies (n_probes, n_outcomes) and F the probe
+photon-number distributions (n_probes, n_photons). Written with H = F^T W F it is
+theta.H.theta - 2 linear.theta + constant + g ||diff theta||^2 per outcome row.
+
+Solver: accelerated projected gradient (FISTA, Beck & Teboulle, SIAM J. Imaging Sci. 2, 183
+(2009)) with gradient-based adaptive restart (O'Donoghue & Candes, Found. Comput. Math. 15,
+715 (2015)), diagonally preconditioned by the row sums of the Hessian (Gershgorin); the
+projection is the exact Euclidean projection of every photon-number column onto the
+probability simplex (Michelot's fixed-point algorithm, J. Optim. Theory Appl. 50, 195 (1986),
+or sorting for many outcomes).
+F is stored in blocks: photon numbers are cut into strides of ``stride`` entries and every probe
+lives in the span of two consecutive strides that holds its window, so one gradient costs
+O(n_probes x window x n_outcomes) and memory O(n_probes x window), not the dense product.
+
+Many problems (cross-validation folds, bootstrap replicates, simulated scans) are solved in one
+compiled loop: :func:`solve_povm_batch` stacks them in groups of :data:`BATCH` members, each
+member with its own data, weights, g and start; a member stops changing once it meets its own
+stopping rule, so every member ends exactly where it would alone (up to rounding).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from povmfit.models import banded_probe_distributions
+
+__all__ = [
+    "ProblemLayout", "build_layout", "WeightedOperator", "weighted_operator", "solve_povm",
+    "solve_povm_batch", "objective_value", "predicted_frequencies", "project_columns_to_simplex",
+    "coarse_start", "interpolation_matrix", "BATCH",
+]
+
+BATCH = 5  # problems per compiled solve (one compiled shape; 5 = the default number of folds)
+SMALL_PROBLEM = 4096  # outcomes x photon numbers up to which a lone problem is padded to BATCH
+CHECK_EVERY = 25  # iterations between two evaluations of the stopping rule
+FEW_OUTCOMES = 12  # simplex projection by fixed passes up to this many outcomes, else by sorting
+
+
+# ----- the problem in block form ---------------------------------------------------------
+@dataclass(frozen=True)
+class ProblemLayout:
+    """Probe matrix and data arranged for the solver.
+
+    Attributes:
+        blocks: (n_blocks, rows, span) probe distributions; row r of block b is the probe
+            ``probe_index[b, r]`` restricted to photon numbers b*stride .. b*stride+span-1.
+        probe_index: (n_blocks, rows) int, -1 for padding rows.
+        stride, span, n_photons: ints (span == n_photons when there is one block; span is a
+            multiple of stride).
+    """
+
+    blocks: np.ndarray
+    probe_index: np.ndarray
+    stride: int
+    span: int
+    n_photons: int
+
+    def per_row(self, per_probe: np.ndarray) -> np.ndarray:
+        """Scatter a per-probe array (n_probes, ...) into rows: (n_blocks, rows, ...), 0 on padding."""
+        per_probe = np.asarray(per_probe, dtype=float)
+        out = per_probe[np.maximum(self.probe_index, 0)]
+        mask = (self.probe_index >= 0).reshape(self.probe_index.shape + (1,) * (per_probe.ndim - 1))
+        return np.where(mask, out, 0.0)
+
+    def per_probe(self, per_row: np.ndarray, n_probes: int) -> np.ndarray:
+        valid = self.probe_index >= 0
+        out = np.zeros((n_probes,) + per_row.shape[2:])
+        out[self.probe_index[valid]] = per_row[valid]
+        return out
+
+    @property
+    def dense(self) -> bool:
+        """One block holding every photon number: the solver uses the Gram matrix F^T W F."""
+        return self.blocks.shape[0] == 1 and self.span == self.n_photons
+
+
+def build_layout(coherent, thermal, n_photons: int, tolerance: float = 1e-12, banded: bool | None = None) -> ProblemLayout:
+    """Block layout of the probes' photon-number distributions (see module docstring).
+
+    ``banded=None`` uses blocks when the widest probe window is below a third of n_photons
+    (one dense block otherwise); True/False force the choice (True needs width < n_photons).
+    """
+    use_blocks = banded
+    banded = banded_probe_distributions(coherent, thermal, n_photons, tolerance)
+    width, n_probes = banded.width, banded.n_probes
+    if use_blocks is None:
+        use_blocks = 3 * width < n_photons
+    if not use_blocks or width >= n_photons:  # one dense block
+        return ProblemLayout(banded.dense()[None], np.arange(n_probes)[None], n_photons, n_photons, n_photons)
+    stride, span = width, 2 * width
+    block_of = banded.starts // stride
+    n_blocks = int(block_of.max()) + 1
+    rows = int(np.bincount(block_of, minlength=n_blocks).max())
+    blocks = np.zeros((n_blocks, rows, span))
+    index = -np.ones((n_blocks, rows), dtype=np.int64)
+    fill = np.zeros(n_blocks, dtype=np.int64)
+    for p in range(n_probes):
+        b = block_of[p]
+        offset = banded.starts[p] - b * stride
+        blocks[b, fill[b], offset : offset + width] = banded.values[p]
+        index[b, fill[b]] = p
+        fill[b] += 1
+    return ProblemLayout(blocks, index, stride, span, n_photons)
+
+
+# ----- the probe matrix and its adjoint in numpy (set-up, scoring) -----------------------------
+def _predict_numpy(theta, layout: ProblemLayout) -> np.ndarray:
+    """sum_n F[p, n] theta[k, n] per row: (n_blocks, rows, n_outcomes)."""
+    n_blocks = layout.blocks.shape[0]
+    padded = np.zeros((theta.shape[0], (n_blocks - 1) * layout.stride + layout.span))
+    padded[:, : layout.n_photons] = theta
+    starts = np.arange(n_blocks) * layout.stride
+    spans = padded[:, starts[:, None] + np.arange(layout.span)[None, :]]  # (K, n_blocks, span)
+    return np.einsum("brs,kbs->brk", layout.blocks, spans)
+
+
+def _adjoint_numpy(per_row, layout: ProblemLayout) -> np.ndarray:
+    """sum_p F[p, n] per_row[p, k] on photon numbers: (n_outcomes, n_photons)."""
+    n_blocks, stride = layout.blocks.shape[0], layout.stride
+    per_span = np.einsum("brs,brk->kbs", layout.blocks, per_row)
+    out = np.zeros((per_row.shape[-1], n_blocks - 1 + layout.span // stride, stride))
+    for j in range(layout.span // stride):  # the span of block b covers strides b .. b+span/stride-1
+        out[:, j : j + n_blocks] += per_span[:, :, j * stride : (j + 1) * stride]
+    return out.reshape(per_row.shape[-1], -1)[:, : layout.n_photons]
+
+
+# ----- solver pieces (pure JAX) ------------------------------------------------------------
+def project_columns_to_simplex(v):
+    """Euclidean projection of every column of v (shape (..., n_outcomes, n_columns)) onto
+    {x >= 0, sum x = 1}.
+
+    Up to :data:`FEW_OUTCOMES` outcomes, Michelot's algorithm: tau = (sum of the entries above
+    the previous tau - 1) / their number, started from all entries; tau rises and the set
+    shrinks until it stops changing, which takes at most n_outcomes - 1 updates, so that many
+    fixed passes give the exact projection (element-wise work only). More outcomes: the
+    sort-based algorithm (Duchi et al., ICML 2008).
+    """
+    k = v.shape[-2]
+    if k > FEW_OUTCOMES:
+        return _project_by_sorting(v)
+    tau = (jnp.sum(v, axis=-2, keepdims=True) - 1.0) / k
+    for _ in range(k - 1):
+        above = v > tau
+        tau = (jnp.sum(jnp.where(above, v, 0.0), axis=-2, keepdims=True) - 1.0) / jnp.sum(above, axis=-2, keepdims=True)
+    return jnp.maximum(v - tau, 0.0)
+
+
+def _project_by_sorting(v):
+    k = v.shape[-2]
+    u = -jnp.sort(-v, axis=-2)
+    cumulative = jnp.cumsum(u, axis=-2) - 1.0
+    ranks = jnp.arange(1, k + 1, dtype=v.dtype)[:, None]
+    active = jnp.sum(u - cumulative / ranks > 0, axis=-2, keepdims=True)
+    tau = jnp.take_along_axis(cumulative, active - 1, axis=-2) / active
+    return jnp.maximum(v - tau, 0.0)
+
+
+def _span_indices(n_blocks, stride, span):
+    return jnp.arange(n_blocks)[:, None] * stride + jnp.arange(span)[None, :]
+
+
+def _predict(theta, blocks, stride):
+    """Predicted probabilities per row for a batch: theta (B, K, N) -> (B, n_blocks, rows, K)."""
+    n_blocks, _, span = blocks.shape
+    padded_length = (n_blocks - 1) * stride + span
+    padded = jnp.pad(theta, ((0, 0), (0, 0), (0, padded_length - theta.shape[-1])))
+    spans = padded[:, :, _span_indices(n_blocks, stride, span)]  # (B, K, n_blocks, span)
+    return jnp.einsum("brs,zkbs->zbrk", blocks, spans)
+
+
+def _adjoint(residual, blocks, stride, n_photons):
+    """F^T residual back on photon numbers for a batch: (B, n_blocks, rows, K) -> (B, K, N)."""
+    n_blocks, _, span = blocks.shape
+    per_span = jnp.einsum("brs,zbrk->zkbs", blocks, residual)
+    padded_length = (n_blocks - 1) * stride + span
+    out = jnp.zeros(residual.shape[:1] + residual.shape[-1:] + (padded_length,))
+    out = out.at[:, :, _span_indices(n_blocks, stride, span)].add(per_span)
+    return out[:, :, :n_photons]
+
+
+def _smoothness_gradient(theta):
+    """Gradient of sum_k sum_n (theta[k, n] - theta[k, n+1])^2 divided by 2 (last axis is n)."""
+    difference = jnp.diff(theta, axis=-1)
+    pad = [(0, 0)] * (theta.ndim - 1)
+    return jnp.pad(difference, pad + [(1, 0)]) - jnp.pad(difference, pad + [(0, 1)])
+
+
+def _apply_data(theta, operator, stride, kind):
+    """theta (B, K, N) -> theta (F^T W F) per member, with the Gram matrices (B, N, N) or the
+    blocks and per-member row weights (B, n_blocks, rows)."""
+    if kind == "gram":
+        return jnp.einsum("zkn,znm->zkm", theta, operator[0])
+    blocks, weights = operator
+    return _adjoint(weights[..., None] * _predict(theta, blocks, stride), blocks, stride, theta.shape[-1])
+
+
+@partial(jax.jit, static_argnames=("stride", "kind", "check_every"))
+def _fista(theta0, operator, linear, constant, g, step, active, rtol, max_iter, stride, kind, check_every=CHECK_EVERY):
+    """FISTA with adaptive restart on a batch of B problems, scaled by the per-column steps.
+
+    Shapes: theta0, linear (B, K, N); constant, g, rtol (B,); step (B, N); active (B,) bool
+    (inactive members are padding and never move). Member b minimises
+    x.H_b.x - 2 linear_b.x + constant_b + g_b ||diff x||^2 over columns in the simplex and
+    stops when its objective changes by at most rtol_b (relative) over ``check_every``
+    iterations, or after ``max_iter`` iterations (checked every ``check_every`` iterations and
+    at max_iter). Returns (theta (B, K, N), iterations (B,), converged (B,)).
+    """
+    per_member = (slice(None), None, None)
+
+    def objective(x):
+        data = jnp.sum(x * _apply_data(x, operator, stride, kind), axis=(1, 2))
+        return data - 2.0 * jnp.sum(linear * x, axis=(1, 2)) + constant + g * jnp.sum(jnp.diff(x, axis=-1) ** 2, axis=(1, 2))
+
+    def iterate(_, state):
+        x, y, t = state
+        gradient = 2.0 * (_apply_data(y, operator, stride, kind) - linear) + 2.0 * g[per_member] * _smoothness_gradient(y)
+        x_new = project_columns_to_simplex(y - step[:, None, :] * gradient)
+        restart = jnp.sum((y - x_new) * (x_new - x), axis=(1, 2)) > 0
+        t_new = jnp.where(restart, 1.0, 0.5 * (1.0 + jnp.sqrt(1.0 + 4.0 * t * t)))
+        y_new = x_new + jnp.where(restart, 0.0, (t - 1.0) / t_new)[per_member] * (x_new - x)
+        return x_new, y_new, t_new
+
+    def cond(state):
+        it, done = state[3], state[6]
+        return (it < max_iter) & ~jnp.all(done)
+
+    def body(state):
+        x, y, t, it, f_old, f_new, done, iterations = state
+        steps = jnp.minimum(check_every, max_iter - it)
+        x_run, y_run, t_run = jax.lax.fori_loop(0, steps, iterate, (x, y, t))
+        keep = done[per_member]  # members that had stopped before keep their state
+        f_previous, f_latest = jnp.where(done, f_old, f_new), jnp.where(done, f_new, objective(x_run))
+        stopped = done | (jnp.abs(f_previous - f_latest) <= rtol * jnp.abs(f_latest))
+        return (jnp.where(keep, x, x_run), jnp.where(keep, y, y_run), jnp.where(done, t, t_run), it + steps,
+                f_previous, f_latest, stopped, jnp.where(done, iterations, it + steps))
+
+    start = objective(theta0)
+    state = (theta0, theta0, jnp.ones_like(constant), jnp.asarray(0, dtype=max_iter.dtype),
+             start + 1.0 + jnp.abs(start), start, ~active, jnp.zeros(active.shape, dtype=max_iter.dtype))
+    x, _, _, _, f_old, f_new, _, iterations = jax.lax.while_loop(cond, body, state)
+    return x, iterations, jnp.abs(f_old - f_new) <= rtol * jnp.abs(f_new)
+
+
+# ----- operators and the solve entry points ------------------------------------------------------
+@dataclass(frozen=True)
+class WeightedOperator:
+    """The data term's Hessian for one set of probe weights.
+
+    ``kind`` is "gram" (``matrix`` = F^T W F, dense (n_photons, n_photons)) or "blocks"
+    (``matrix`` is None; the solver uses the layout's blocks and ``row_weights``);
+    ``row_sums`` (n_photons,) are the row sums of F^T W F, an upper bound of its largest
+    eigenvalue and the diagonal preconditioner.
+    """
+
+    layout: ProblemLayout
+    kind: str
+    matrix: np.ndarray | None
+    row_weights: np.ndarray
+    row_sums: np.ndarray
+
+    @property
+    def scale(self) -> float:
+        return float(self.row_sums.max())
+
+
+def weighted_operator(layout: ProblemLayout, probe_weights) -> WeightedOperator:
+    """F^T W F for probe weights w_p (n_probes,), in the form the solver uses (numpy only)."""
+    row_weights = layout.per_row(probe_weights)
+    if layout.dense:
+        dense = layout.blocks[0]
+        gram = dense.T @ (row_weights[0][:, None] * dense)
+        return WeightedOperator(layout, "gram", gram, row_weights, gram.sum(axis=1))
+    ones = np.ones((1, layout.n_photons))
+    row_sums = _adjoint_numpy(row_weights[..., None] * _predict_numpy(ones, layout), layout)[0]
+    return WeightedOperator(layout, "blocks", None, row_weights, row_sums)
+
+
+def _linear_term(op: WeightedOperator, frequencies):
+    """(F^T W f)^T, shape (n_outcomes, n_photons), and sum_p w_p ||f_p||^2."""
+    targets = op.layout.per_row(frequencies)
+    weighted = op.row_weights[..., None] * targets
+    return _adjoint_numpy(weighted, op.layout), float(np.sum(weighted * targets))
+
+
+def _steps(op: WeightedOperator, regularisation: float) -> np.ndarray:
+    # Gershgorin: H has non-negative entries, so diag(row sums) - H is positive semidefinite;
+    # the smoothness term's Hessian has row sums <= 4.
+    curvature = 2.0 * (op.row_sums + 4.0 * regularisation)
+    return 1.0 / np.maximum(curvature, 1e-12 * max(curvature.max(), 1e-300))
+
+
+def solve_povm_batch(ops, frequencies, regularisation, theta0=None, rtol=1e-12, max_iter: int = 200_000):
+    """Solve many problems of one layout, :data:`BATCH` at a time in one compiled loop
+    (a lone large problem alone: see :data:`SMALL_PROBLEM`).
+
+    Args:
+        ops: a :class:`WeightedOperator` shared by all problems, or a sequence with one per
+            problem (all of the same layout).
+        frequencies: (n_problems, n_probes, n_outcomes) observed frequencies, or
+            (n_probes, n_outcomes) shared by all problems.
+        regularisation: g (objective units), scalar or (n_problems,).
+        theta0: start, None (uniform), (n_outcomes, n_photons) shared or
+            (n_problems, n_outcomes, n_photons).
+        rtol: relative objective change over 25 iterations that counts as converged, scalar
+            or (n_problems,).
+        max_iter: iteration limit of every problem.
+    Returns:
+        (theta (n_problems, n_outcomes, n_photons), iterations (n_problems,) int,
+        converged (n_problems,) bool), numpy arrays; each problem as :func:`solve_povm` gives it.
+    """
+    frequencies = np.asarray(frequencies, dtype=float)
+    n_problems = _count_problems(ops, frequencies, regularisation, theta0, rtol)
+    op_list = list(ops) if isinstance(ops, (list, tuple)) else [ops] * n_problems
+    layout = op_list[0].layout
+    n_outcomes, n_photons = frequencies.shape[-1], layout.n_photons
+    frequencies = np.broadcast_to(frequencies, (n_problems,) + frequencies.shape[-2:])
+    g = np.broadcast_to(np.asarray(regularisation, dtype=float), (n_problems,))
+    tolerance = np.broadcast_to(np.asarray(rtol, dtype=float), (n_problems,))
+    if theta0 is None:
+        theta0 = np.full((n_outcomes, n_photons), 1.0 / n_outcomes)
+    theta0 = np.broadcast_to(np.asarray(theta0, dtype=float), (n_problems, n_outcomes, n_photons))
+    thetas = np.empty((n_problems, n_outcomes, n_photons))
+    iterations = np.empty(n_problems, dtype=np.int64)
+    converged = np.empty(n_problems, dtype=bool)
+    # Small problems always run BATCH members (padding included): one compiled shape serves
+    # every call. Large ones are not padded: there a padding member costs real time.
+    per_call = BATCH if n_outcomes * n_photons <= SMALL_PROBLEM else min(BATCH, n_problems)
+    for first in range(0, n_problems, per_call):
+        members = np.arange(first, min(first + per_call, n_problems))
+        padded = np.concatenate([members, np.full(per_call - members.size, members[0])])
+        args = _member_arrays([op_list[i] for i in padded], frequencies[padded], g[padded], theta0[padded])
+        x, its, ok = _fista(
+            jnp.asarray(args["theta0"]), args["operator"], jnp.asarray(args["linear"]), jnp.asarray(args["constant"]),
+            jnp.asarray(g[padded]), jnp.asarray(args["step"]), jnp.asarray(np.arange(per_call) < members.size),
+            jnp.asarray(tolerance[padded]), jnp.asarray(max_iter, dtype=jnp.int32), stride=layout.stride,
+            kind=op_list[0].kind,
+        )
+        thetas[members] = np.asarray(x)[: members.size]
+        iterations[members] = np.asarray(its)[: members.size]
+        converged[members] = np.asarray(ok)[: members.size]
+    return thetas, iterations, converged
+
+
+def _count_problems(ops, frequencies, regularisation, theta0, rtol) -> int:
+    sizes = {len(ops)} if isinstance(ops, (list, tuple)) else set()
+    sizes |= {frequencies.shape[0]} if frequencies.ndim == 3 else set()
+    for value, ndim in ((regularisation, 1), (theta0, 3), (rtol, 1)):
+        if value is not None and np.ndim(value) == ndim:
+            sizes.add(np.shape(value)[0])
+    if len(sizes) > 1:
+        raise ValueError(f"solve_povm_batch: the per-problem arguments disagree on the number of problems: {sorted(sizes)}")
+    return sizes.pop() if sizes else 1
+
+
+def _member_arrays(ops, frequencies, g, theta0) -> dict:
+    """Stacked solver inputs of a batch of members (numpy, except the operator)."""
+    linear, constant = zip(*(_linear_term(op, f) for op, f in zip(ops, frequencies)))
+    if ops[0].kind == "gram":
+        operator = (jnp.asarray(np.stack([op.matrix for op in ops])),)
+    else:
+        operator = (jnp.asarray(ops[0].layout.blocks), jnp.asarray(np.stack([op.row_weights for op in ops])))
+    return {
+        "theta0": theta0, "operator": operator, "linear": np.stack(linear), "constant": np.asarray(constant),
+        "step": np.stack([_steps(op, gi) for op, gi in zip(ops, g)]),
+    }
+
+
+def solve_povm(op: WeightedOperator, frequencies, regularisation: float, theta0=None,
+               rtol: float = 1e-12, max_iter: int = 200_000):
+    """Solve the constrained least-squares problem at fixed g.
+
+    Args:
+        op: :func:`weighted_operator` of the layout and probe weights w_p (0 leaves a probe out).
+        frequencies: (n_probes, n_outcomes) observed outcome frequencies.
+        regularisation: g >= 0 in the objective's units.
+        theta0: optional start (n_outcomes, n_photons); default uniform.
+        rtol: relative objective change over 25 iterations that counts as converged.
+    Returns:
+        (theta (n_outcomes, n_photons) numpy array, iterations, converged flag).
+    """
+    theta, iterations, converged = solve_povm_batch(op, np.asarray(frequencies)[None], [regularisation],
+                                                    None if theta0 is None else np.asarray(theta0)[None], rtol, max_iter)
+    return theta[0], int(iterations[0]), bool(converged[0])
+
+
+def interpolation_matrix(n_coarse: int, n_photons: int) -> np.ndarray:
+    """Hat functions on ``n_coarse`` evenly spaced nodes over 0..n_photons-1: (n_coarse, n_photons).
+
+    Columns are convex weights, so theta = theta_coarse @ P keeps every column in the simplex.
+    """
+    nodes = np.linspace(0.0, n_photons - 1.0, n_coarse)
+    spacing = nodes[1] - nodes[0]
+    return np.clip(1.0 - np.abs(np.arange(n_photons)[None, :] - nodes[:, None]) / spacing, 0.0, None)
+
+
+def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisation: float,
+                 n_coarse: int = 400, rtol: float = 1e-10) -> np.ndarray:
+    """Warm start for large problems: solve with theta piecewise linear between ``n_coarse``
+    nodes (the smoothness term of a piecewise-linear theta with node spacing h is the coarse
+    one divided by h) and interpolate back. Shape (n_outcomes, n_photons)."""
+    n_photons = layout.n_photons
+    n_coarse = int(min(n_coarse, n_photons))
+    hats = interpolation_matrix(n_coarse, n_photons)
+    n_probes = int(layout.probe_index.max()) + 1
+    coarse = np.zeros((n_probes, n_coarse))
+    padded_length = (layout.blocks.shape[0] - 1) * layout.stride + layout.span
+    hats_padded = np.zeros((n_coarse, padded_length))
+    hats_padded[:, :n_photons] = hats
+    for b in range(layout.blocks.shape[0]):
+        rows = layout.probe_index[b] >= 0
+        window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
+        coarse[layout.probe_index[b, rows]] = layout.blocks[b, rows] @ window.T
+    coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
+    spacing = (n_photons - 1.0) / (n_coarse - 1.0)
+    theta, _, _ = solve_povm(weighted_operator(coarse_layout, probe_weights), frequencies,
+                             regularisation / spacing, rtol=rtol)
+    return theta @ hats
+
+
+def objective_value(layout: ProblemLayout, frequencies, probe_weights, regularisation: float, theta) -> float:
+    """The objective of the module docstring at ``theta`` (computed from the residuals)."""
+    theta = np.asarray(theta, dtype=float)
+    residual = _predict_numpy(theta, layout) - layout.per_row(frequencies)
+    data = np.sum(layout.per_row(probe_weights)[..., None] * residual**2)
+    return float(data + regularisation * np.sum(np.diff(theta, axis=1) ** 2))
+
+
+def predicted_frequencies(layout: ProblemLayout, theta, n_probes: int) -> np.ndarray:
+    """q[p, k] = sum_n F[p, n] theta[k, n]: shape (n_probes, n_outcomes)."""
+    return layout.per_probe(_predict_numpy(np.asarray(theta, dtype=float), layout), n_probes)
