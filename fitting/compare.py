@@ -16,7 +16,8 @@ Criteria (each reported in the table):
   floor), so the statistic follows the 50:50 mixture of chi2_0 and chi2_1 (Self & Liang,
   J. Am. Stat. Assoc. 82, 605 (1987)); the unequal split adds N-1 interior parameters (chi2_{N-1}).
 - held-out-probe cross-validation (predictive deviance on folds of probes) for the leading
-  candidates, as a second opinion.
+  candidates (at most ``cv_top``, each within ``CV_BIC_WINDOW`` of the best BIC), as a second
+  opinion where the criteria are close.
 The chosen model is the adequate candidate with the lowest BIC (the lowest BIC overall when
 none is adequate, and the verdict says so).
 """
@@ -40,6 +41,7 @@ from .objective import cell_residuals
 __all__ = ["candidate_models", "compare_models", "Comparison", "ADEQUACY_LEVEL"]
 
 ADEQUACY_LEVEL = 0.01
+CV_BIC_WINDOW = 10.0  # delta BIC beyond which the evidence is already "very strong" (Kass & Raftery 1995)
 LRT_LEVEL = 0.05
 _MAX_SPLIT = 16
 
@@ -216,7 +218,8 @@ def compare_models(
         row["weight"] = float(w)
         row["cv_deviance"] = None
     rows.sort(key=lambda r: (not r["adequate"], r["bic"]))
-    for row in rows[:cv_top] if cv_folds and scan.n_probes >= 2 * cv_folds else []:
+    leading = [r for r in rows[:cv_top] if r["bic"] - rows[0]["bic"] <= CV_BIC_WINDOW]
+    for row in leading if cv_folds and scan.n_probes >= 2 * cv_folds else []:
         fit = fits[row["model"]]
         row["cv_deviance"] = _cross_validation(scan, fit, family_compute_model(fit.model), cv_folds, seed, calibration_uncertainty)
 

@@ -204,7 +204,7 @@ def _verdict_section(sheet: dict, comparison) -> str:
                      _num(row.get("cv_deviance"))])
     out.append(_table(["model", "k", "deviance", "dof", "p", "AIC", "BIC", "dAIC", "dBIC", "weight", "CV"], rows, "wide"))
     out.append("<p class=\"caption\">k: number of model parameters; p: goodness-of-fit p-value of the deviance; "
-               "CV: held-out-probe predictive deviance (computed for the leading candidates only); "
+               "CV: held-out-probe predictive deviance (computed for up to three leading candidates within 10 of the best BIC); "
                "weight: Akaike weight.</p>")
     chosen = getattr(getattr(comparison, "chosen", None), "spec", None)
     # the tests that add a feature to, or remove one from, the chosen model; all are in datasheet.json
