@@ -16,11 +16,11 @@ from __future__ import annotations
 
 import hashlib
 import os
+import sys
 import tempfile
 from functools import lru_cache
 from pathlib import Path
 
-import jax
 import numpy as np
 
 import povmfit
@@ -34,23 +34,37 @@ def _user_cache_folder() -> Path:
     return Path(os.environ.get("XDG_CACHE_HOME", Path.home() / ".cache")) / "povmfit"
 
 
+_JAX_SETTINGS = {  # JAX reads these options from the environment when it is first imported
+    "jax_persistent_cache_min_compile_time_secs": 0.0,
+    "jax_persistent_cache_min_entry_size_bytes": -1,
+}
+
+
 def enable_compilation_cache() -> None:
-    """Keep JAX's compiled code and povmfit's traced programs in the user cache folder."""
+    """Keep JAX's compiled code and povmfit's traced programs in the user cache folder.
+
+    Does not import JAX (the command line calls it first thing): before JAX is imported the
+    options go to the environment, afterwards to ``jax.config``.
+    """
     base = _user_cache_folder()
     try:
         (base / "jax").mkdir(parents=True, exist_ok=True)
         (base / "programs").mkdir(parents=True, exist_ok=True)
     except OSError:
         return
-    jax.config.update("jax_compilation_cache_dir", str(base / "jax"))
-    jax.config.update("jax_persistent_cache_min_compile_time_secs", 0.0)
-    jax.config.update("jax_persistent_cache_min_entry_size_bytes", -1)
+    settings = dict(_JAX_SETTINGS, jax_compilation_cache_dir=str(base / "jax"))
+    if "jax" in sys.modules:
+        for name, value in settings.items():
+            sys.modules["jax"].config.update(name, value)
+    else:
+        os.environ.update({name.upper(): str(value) for name, value in settings.items()})
     _STORE["folder"] = base / "programs"
 
 
 @lru_cache(maxsize=1)
 def _source_fingerprint() -> str:
     """SHA-256 over the package's Python sources and the versions of jax and jaxlib."""
+    import jax
     import jaxlib
 
     digest = hashlib.sha256(f"{jax.__version__}|{jaxlib.__version__}".encode())
@@ -80,6 +94,7 @@ def stored_program(jitted, label: str, args):
     if folder is None:
         return jitted
     try:
+        import jax
         from jax import export
 
         key = hashlib.sha256(repr((label, _signature(args), _source_fingerprint())).encode()).hexdigest()

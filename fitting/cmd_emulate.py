@@ -13,7 +13,6 @@ import argparse
 import sys
 
 from ._io import InputError, atomic_write_text
-from .emulator import Emulator
 
 __all__ = ["register", "run", "format_table"]
 
@@ -66,6 +65,8 @@ def run(args) -> int:
         raise InputError(f"--ensemble must be >= 1, got {args.ensemble}")
     if args.seed is not None and args.seed < 0:
         raise InputError(f"--seed must be >= 0, got {args.seed}")
+    from .emulator import Emulator
+
     emulator = Emulator.from_file(args.detector, args.povm_source)
     if args.ensemble is not None:
         emulator = emulator.ensemble(args.ensemble, seed=args.seed)

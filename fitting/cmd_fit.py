@@ -7,7 +7,7 @@ from pathlib import Path
 
 
 from ._io import InputError, json_safe
-from .pipeline import run_fit_pipeline
+from .model_free import start_model_free
 
 EPILOG = """examples:
   povmfit fit scan.csv                                   # choose the model automatically
@@ -64,7 +64,10 @@ def validate_options(args):
 def run(args) -> int:
     validate_options(args)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
-    outcome = run_fit_pipeline(args.scan, out_dir, args)
+    model_free = start_model_free(args.scan, args.seed)  # on the second core, before the heavy imports
+    from .pipeline import run_fit_pipeline
+
+    outcome = run_fit_pipeline(args.scan, out_dir, args, model_free)
     print_summary(outcome, args)
     return 0
 

@@ -14,9 +14,6 @@ from pathlib import Path
 import numpy as np
 
 from ._io import InputError, atomic_write_text, json_safe, write_json
-from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
-from .reconstruct import reconstruct_povm
-from .scan import load_scan
 
 __all__ = ["register", "run", "write_reconstruction_csvs", "povm_rows", "wigner_rows", "reconstruct_scan"]
 
@@ -99,6 +96,9 @@ def write_reconstruction_csvs(out_dir, reconstruction, pointwise, smoothed, mode
 
 def reconstruct_scan(scan, bootstrap: int = 100, seed: int = 0, saturation=None, quiet: bool = False) -> dict:
     """All reconstructions of a scan: {reconstruction, pointwise, smoothed, phase_test}."""
+    from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
+    from .reconstruct import reconstruct_povm
+
     reconstruction = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts,
                                       bootstrap=bootstrap, seed=seed, quiet=quiet)
     pointwise = pointwise_wigner(scan.coherent_photons, scan.thermal_photons, scan.counts, scan.phase_rad,
@@ -128,6 +128,8 @@ def run(args) -> int:
         raise InputError(f"--bootstrap: expected a non-negative number of resamples, got {args.bootstrap}")
     if args.saturation is not None and args.saturation < 1:
         raise InputError(f"--saturation: expected a photon number >= 1, got {args.saturation}")
+    from .scan import load_scan
+
     scan = load_scan(args.scan)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
     parts = reconstruct_scan(scan, args.bootstrap, args.seed, args.saturation, quiet=args.quiet or args.json)

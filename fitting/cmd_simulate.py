@@ -25,11 +25,7 @@ from pathlib import Path
 
 import numpy as np
 
-from povmfit.models import choose_cutoff, probe_distributions, sample_counts
-
 from ._io import InputError, data_rows, read_csv_rows
-from .emulator import Emulator
-from .scan import scan_from_arrays, write_scan
 
 __all__ = ["register", "run", "parse_probe_grid", "load_probe_file", "simulate_counts"]
 
@@ -142,11 +138,13 @@ def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
 
 
 # ----- simulation ------------------------------------------------------------------------
-def simulate_counts(emulator: Emulator, coherent, thermal, shots: int, seed=None) -> np.ndarray:
+def simulate_counts(emulator, coherent, thermal, shots: int, seed=None) -> np.ndarray:
     """Counts (n_probes, n_outcomes): Multinomial(shots, q_p) for every probe p.
 
     q_p uses one detector (one ensemble member, chosen with ``seed``) for all probes.
     """
+    from povmfit.models import choose_cutoff, probe_distributions, sample_counts
+
     rng = np.random.default_rng(seed)
     n_photons = choose_cutoff(coherent, thermal)
     distributions = np.asarray(probe_distributions(coherent, thermal, n_photons))
@@ -167,6 +165,9 @@ def run(args) -> int:
         coherent, thermal, labels = load_probe_file(args.probes)
     else:
         coherent, thermal = parse_probe_grid(args.probes)
+    from .emulator import Emulator
+    from .scan import scan_from_arrays, write_scan
+
     emulator = Emulator.from_file(args.detector, args.povm_source)
     counts = simulate_counts(emulator, coherent, thermal, args.shots, args.seed)
     scan = scan_from_arrays(coherent, thermal, counts, labels=labels, source=f"simulate {args.detector}")

@@ -23,7 +23,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from povmfit.models import DetectorModel, probe_distributions
+from povmfit.models import DetectorModel, probe_distributions, probe_distributions_numpy
 
 from ._cache import StoredPrograms
 
@@ -106,12 +106,6 @@ def compiled(model: DetectorModel, n_photons: int, weighting: str = "deviance", 
     return _Compiled(model, n_photons, weighting, calibrated)
 
 
-@lru_cache(maxsize=16)
-def _distribution_program(n_photons: int):
-    return StoredPrograms(jax.jit(lambda coherent, thermal: probe_distributions(coherent, thermal, n_photons)),
-                          f"probe_distributions|{n_photons}")
-
-
 _DISTRIBUTIONS: dict = {}
 
 
@@ -123,7 +117,7 @@ def fixed_probe_distributions(coherent, thermal, n_photons: int) -> np.ndarray:
     if key not in _DISTRIBUTIONS:
         if len(_DISTRIBUTIONS) > 64:
             _DISTRIBUTIONS.clear()
-        _DISTRIBUTIONS[key] = np.asarray(_distribution_program(n_photons)(coherent, thermal))
+        _DISTRIBUTIONS[key] = probe_distributions_numpy(coherent, thermal, n_photons)
     return _DISTRIBUTIONS[key]
 
 

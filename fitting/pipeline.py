@@ -7,11 +7,8 @@ from __future__ import annotations
 
 import sys
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-import jax
-import jax.numpy as jnp
 import numpy as np
 
 import povmfit
@@ -22,12 +19,11 @@ from .compare import family_compute_model, candidate_models, compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
+from .model_free import ModelFreeJob, start_model_free
 from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors"]
 
-# The cross-check inside `povmfit fit` uses fewer bootstrap resamples than `povmfit reconstruct`.
-RECONSTRUCTION_BOOTSTRAP = 50
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 
 
@@ -59,22 +55,28 @@ def _select_model(scan, args):
     return comparison.chosen, comparison
 
 
-def run_fit_pipeline(scan_path, out_dir: Path, args) -> dict:
-    """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict."""
-    scan = load_scan(scan_path)
-    if args.model != "auto":  # refuse what can be refused before any work starts
-        if args.candidates:
-            raise InputError("--candidates is only used with --model auto")
-        check_identifiable(scan, _parse_model_option(args.model))
-    elif args.candidates:
-        for spec in args.candidates.split(","):
-            _parse_model_option(spec, "--candidates")
-    # The model-free reconstructions do not depend on the fit: run them on the second core
-    # while the models are ranked and fitted (JAX and numpy release the GIL while computing).
-    with ThreadPoolExecutor(max_workers=1) as pool:
-        model_free = pool.submit(_model_free_reconstructions, scan, args)
+def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | None = None) -> dict:
+    """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict.
+
+    ``model_free``: the reconstructions already started by :func:`start_model_free` (the
+    command line starts them before importing this module); started here when absent.
+    """
+    if model_free is None:
+        model_free = start_model_free(scan_path, args.seed)
+    try:
+        scan = load_scan(scan_path)
+        if args.model != "auto":  # refuse what can be refused before any work starts
+            if args.candidates:
+                raise InputError("--candidates is only used with --model auto")
+            check_identifiable(scan, _parse_model_option(args.model))
+        elif args.candidates:
+            for spec in args.candidates.split(","):
+                _parse_model_option(spec, "--candidates")
+        # the model-free reconstructions run in their own process meanwhile
         model, comparison, result = _rank_and_fit(scan, args)
-        parts = model_free.result()
+        parts = model_free.result(scan)
+    finally:
+        model_free.cancel()
     cross = _cross_check_section(scan, result, parts, args.seed)
 
     options = {
@@ -146,33 +148,6 @@ def _single_row(result) -> list:
         "p_value": result.p_value, "aic": result.deviance + 2 * k, "bic": None,
         "delta_aic": 0.0, "delta_bic": 0.0, "weight": 1.0,
     }]
-
-
-def _model_free_reconstructions(scan, args) -> dict:
-    """Full diagonal POVM, pointwise and smoothed Wigner values, phase test (no model)."""
-    with np.errstate(over="ignore", invalid="ignore"):  # scipy's trust-region internals (benign)
-        return _model_free_parts(scan, args)
-
-
-def _model_free_parts(scan, args) -> dict:
-    from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
-    from .reconstruct import reconstruct_povm
-
-    coherent, thermal, counts = scan.coherent_photons, scan.thermal_photons, scan.counts
-    reconstruction = reconstruct_povm(coherent, thermal, counts, bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=True)
-    # the published box-constrained estimator (per outcome) keeps the pipeline fast
-    pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method="box",
-                                 bootstrap=RECONSTRUCTION_BOOTSTRAP, seed=args.seed, quiet=True)
-    smoothed = None
-    if pointwise is not None and pointwise.alpha.size >= 2:
-        # the smoothed curve keeps the saturation prior of the pointwise values it summarises
-        smoothed = smoothed_wigner(pointwise, max_saturation=pointwise.saturation)
-    return {
-        "reconstruction": reconstruction,
-        "pointwise": pointwise,
-        "smoothed": smoothed,
-        "phase_test": phase_insensitivity_test(coherent, thermal, counts, scan.phase_rad),
-    }
 
 
 def model_seen_through_reconstruction(scan, result, reconstruction, seed):

@@ -24,6 +24,7 @@ from ._probes import (
     displaced_thermal_distribution,
     fock_distribution,
     probe_distributions,
+    probe_distributions_numpy,
     squeezed_vacuum_distribution,
     tail_mass,
     thermal_distribution,
@@ -44,7 +45,7 @@ from ._wigner import fock_wigner_table, fock_wigner_table_numpy, povm_wigner, sa
 __all__ = [
     "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
     "choose_cutoff", "coherent_distribution", "displaced_thermal_distribution",
-    "fock_distribution", "probe_distributions", "squeezed_vacuum_distribution", "tail_mass",
+    "fock_distribution", "probe_distributions", "probe_distributions_numpy", "squeezed_vacuum_distribution", "tail_mass",
     "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",
     "pixel_crosstalk_matrix", "poisson_dark_matrix", "readout_matrix", "saturation_matrix",
     "split_pixel_matrix", "uniform_pixel_matrix", "fock_wigner_table", "fock_wigner_table_numpy", "povm_wigner",

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._probes import _displaced_thermal_numpy
+from ._probes import probe_distributions_numpy
 
 __all__ = ["BandedProbeMatrix", "banded_probe_distributions"]
 
@@ -91,7 +91,7 @@ def banded_probe_distributions(coherent, thermal, n_photons: int, tolerance: flo
     windows = []
     chunk = max(1, _CHUNK_ENTRIES // max(n_photons, 1))
     for first in range(0, n_probes, chunk):
-        block = _displaced_thermal_numpy(coherent[first : first + chunk], thermal[first : first + chunk], n_photons)
+        block = probe_distributions_numpy(coherent[first : first + chunk], thermal[first : first + chunk], n_photons)
         for row in block:
             lo, hi = _trim(row, tolerance)
             windows.append((lo, row[lo:hi].copy()))

@@ -35,6 +35,7 @@ __all__ = [
     "squeezed_vacuum_distribution",
     "choose_cutoff",
     "probe_distributions",
+    "probe_distributions_numpy",
     "tail_mass",
 ]
 
@@ -112,8 +113,9 @@ def squeezed_vacuum_distribution(mean_photons, n_photons: int):
     return full[:n_photons]
 
 
-def _displaced_thermal_numpy(coherent, thermal, n_photons):
-    """Numpy version of the recurrence for a batch of probes: shape (n_probes, n_photons)."""
+def probe_distributions_numpy(coherent, thermal, n_photons: int) -> np.ndarray:
+    """Numpy twin of :func:`probe_distributions` (same recurrence, logarithmic rescaling, nothing
+    to compile): shape (n_probes, n_photons). For evaluations outside JAX transformations."""
     a = np.asarray(coherent, dtype=float)[:, None]
     nbar = np.asarray(thermal, dtype=float)[:, None]
     r = nbar / (1 + nbar)
@@ -147,7 +149,7 @@ def tail_mass(coherent, thermal, n_photons: int) -> np.ndarray:
     coherent = np.atleast_1d(np.asarray(coherent, dtype=float))
     thermal = np.atleast_1d(np.asarray(thermal, dtype=float))
     bound = max(_generous_bound(coherent, thermal), n_photons + 1)
-    p = _displaced_thermal_numpy(coherent, thermal, bound)
+    p = probe_distributions_numpy(coherent, thermal, bound)
     return p[:, n_photons:].sum(axis=1)
 
 
@@ -167,7 +169,7 @@ def choose_cutoff(coherent, thermal, tolerance: float = 1e-10, limit: int | None
     bound = _generous_bound(coherent, thermal)
     if limit is not None and bound > 50 * limit:
         raise ValueError(f"the brightest probe needs a photon-number cutoff far above {limit}")
-    p = _displaced_thermal_numpy(coherent, thermal, bound)
+    p = probe_distributions_numpy(coherent, thermal, bound)
     # tail[:, j] = mass at n >= j, summed from the top for accuracy
     tail = np.cumsum(p[:, ::-1], axis=1)[:, ::-1]
     worst = tail.max(axis=0)

@@ -1,3 +1,4 @@
-from povmfit.fitting.cli import main
+from povmfit.fitting.cli import entry
 
-raise SystemExit(main())
+if __name__ == "__main__":
+    entry()
