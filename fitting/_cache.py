@@ -18,6 +18,7 @@ import hashlib
 import os
 import sys
 import tempfile
+import time
 from functools import lru_cache
 from pathlib import Path
 
@@ -86,27 +87,77 @@ def _signature(args) -> tuple:
     return tuple((tuple(np.shape(a)), np.result_type(a).str) for a in args)
 
 
+_CLAIM_PATIENCE_S = 120.0  # a claim older than this is taken as abandoned
+
+
 def stored_program(jitted, label: str, args):
-    """A callable equivalent to ``jitted`` for arguments shaped like ``args``, loaded from the
-    program store when it is there (else exported and saved); ``jitted`` itself when the
-    store is off or unusable."""
+    """A compiled callable equivalent to ``jitted`` for arguments shaped like ``args``: loaded
+    from the program store when it is there (else traced, compiled and saved); ``jitted``
+    itself when the store is off or unusable.
+
+    A process compiling a program first leaves a claim file beside it; another process that
+    needs the same program meanwhile waits for it instead of compiling it twice (the command
+    line's helper process compiles programs the main process will need later).
+    """
     folder = _STORE["folder"]
     if folder is None:
         return jitted
     try:
-        import jax
-        from jax import export
-
-        key = hashlib.sha256(repr((label, _signature(args), _source_fingerprint())).encode()).hexdigest()
-        path = folder / f"{key[:40]}.hlo"
+        key = _program_key(label, args)
+        path, claim = folder / f"{key}.hlo", folder / f"{key}.claim"
+        if not path.exists():
+            _wait_for_claim(claim, path)
         if path.exists():
-            program = export.deserialize(bytearray(path.read_bytes()))
-        else:
-            program = export.export(jitted)(*args)
-            _write_atomically(path, program.serialize())
-        return jax.jit(program.call)
+            return _compile(_deserialize(path.read_bytes()), args)
+        return _export_compile_and_store(jitted, args, path, claim)
     except Exception:  # noqa: BLE001 - the store is an optimisation; tracing always works
         return jitted
+
+
+def _program_key(label: str, args) -> str:
+    return hashlib.sha256(repr((label, _signature(args), _source_fingerprint())).encode()).hexdigest()[:40]
+
+
+def _deserialize(data: bytes):
+    from jax import export
+
+    return export.deserialize(bytearray(data))
+
+
+def _compile(program, args):
+    import jax
+
+    # compiling here fills JAX's persistent cache (or reads it) before the program is used
+    return jax.jit(program.call).lower(*args).compile()
+
+
+def _export_compile_and_store(jitted, args, path: Path, claim: Path):
+    from jax import export
+
+    try:
+        claim.touch(exist_ok=False)
+    except OSError:
+        claim = None  # another process claimed it meanwhile: compile anyway, do not wait
+    try:
+        program = export.export(jitted)(*args)
+        compiled = _compile(program, args)
+        _write_atomically(path, program.serialize())
+    finally:
+        if claim is not None:
+            claim.unlink(missing_ok=True)
+    return compiled
+
+
+def _wait_for_claim(claim: Path, path: Path) -> None:
+    """Wait while another process holds a fresh claim on the program at ``path``."""
+    while not path.exists():
+        try:
+            age = time.time() - claim.stat().st_mtime
+        except OSError:
+            return  # no claim (or it was just released)
+        if age > _CLAIM_PATIENCE_S:
+            return
+        time.sleep(0.01)
 
 
 def _write_atomically(path: Path, data: bytes) -> None:
@@ -121,6 +172,11 @@ def _write_atomically(path: Path, data: bytes) -> None:
 
 class StoredPrograms:
     """Callable wrapper of a jitted function that resolves a stored program per argument shape."""
+
+    def is_stored(self, *args) -> bool:
+        """Whether the program for arguments shaped like ``args`` is in the store already."""
+        folder = _STORE["folder"]
+        return folder is not None and (folder / f"{_program_key(self._label, args)}.hlo").exists()
 
     def __init__(self, jitted, label: str):
         self._jitted = jitted

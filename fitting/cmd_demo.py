@@ -67,7 +67,7 @@ def register(subparsers):
 
 def run(args) -> int:
     from .cmd_fit import print_summary
-    from .model_free import start_model_free
+    from .model_free import ranking_request, start_model_free
 
     out_dir = Path(args.out)
     out_dir.mkdir(parents=True, exist_ok=True)
@@ -80,7 +80,7 @@ def run(args) -> int:
     if not args.quiet and not args.json:
         print(f"povmfit demo: simulated scan of an invented 8-bin click detector -> {scan_copy}")
         print(f"true values: {DEMO_TRUTH}\n")
-    model_free = start_model_free(scan_copy, fit_args.seed)
+    model_free = start_model_free(scan_copy, fit_args.seed, ranking=ranking_request(fit_args))
     from .pipeline import run_fit_pipeline
 
     outcome = run_fit_pipeline(scan_copy, out_dir, fit_args, model_free)

@@ -7,7 +7,7 @@ from pathlib import Path
 
 
 from ._io import InputError, json_safe
-from .model_free import start_model_free
+from .model_free import ranking_request, start_model_free
 
 EPILOG = """examples:
   povmfit fit scan.csv                                   # choose the model automatically
@@ -64,7 +64,8 @@ def validate_options(args):
 def run(args) -> int:
     validate_options(args)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
-    model_free = start_model_free(args.scan, args.seed)  # on the second core, before the heavy imports
+    # on the second core, before the heavy imports
+    model_free = start_model_free(args.scan, args.seed, ranking=ranking_request(args))
     from .pipeline import run_fit_pipeline
 
     outcome = run_fit_pipeline(args.scan, out_dir, args, model_free)

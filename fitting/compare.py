@@ -23,7 +23,6 @@ none is adequate, and the verdict says so).
 """
 from __future__ import annotations
 
-import itertools
 import math
 import sys
 import warnings
@@ -35,6 +34,7 @@ from scipy.special import chdtrc
 from povmfit.models import DetectorModel, parse_model_spec
 
 from ._io import InputError
+from .candidates import candidate_models, family_compute_model, ranking_order
 from .fit import FitNotConverged, FitResult, fit_scan
 from .objective import cell_residuals
 
@@ -43,44 +43,6 @@ __all__ = ["candidate_models", "compare_models", "Comparison", "ADEQUACY_LEVEL"]
 ADEQUACY_LEVEL = 0.01
 CV_BIC_WINDOW = 10.0  # delta BIC beyond which the evidence is already "very strong" (Kass & Raftery 1995)
 LRT_LEVEL = 0.05
-_MAX_SPLIT = 16
-
-
-def candidate_models(n_outcomes: int, families=None, features=None) -> list[DetectorModel]:
-    """Candidate models for a scan with ``n_outcomes`` outcomes.
-
-    ``families`` restricts the families ("threshold", "pnr", "array"); ``features`` restricts
-    the features that may be switched on.
-    """
-    k = n_outcomes - 1
-    families = set(families or ("threshold", "pnr", "array"))
-    allowed = set(features) if features is not None else {"dark", "crosstalk", "readout", "unequal_split"}
-    out = []
-    if k == 1:
-        if "threshold" in families:
-            out += [DetectorModel("threshold")] + ([DetectorModel("threshold", features=("dark",))] if "dark" in allowed else [])
-        return out
-    pool = {
-        "pnr": [f for f in ("dark", "crosstalk", "readout") if f in allowed],
-        "array": [f for f in ("dark", "crosstalk", "readout", "unequal_split") if f in allowed and (f != "unequal_split" or k <= _MAX_SPLIT)],
-    }
-    for family in ("pnr", "array"):
-        if family not in families:
-            continue
-        for r in range(len(pool[family]) + 1):
-            for subset in itertools.combinations(pool[family], r):
-                out.append(DetectorModel(family, k, subset))
-    return out
-
-
-def family_compute_model(model: DetectorModel) -> DetectorModel:
-    """The largest model of the same family whose compiled code fits ``model``."""
-    if model.family == "threshold":
-        return DetectorModel("threshold", features=("dark",))
-    features = ["dark", "crosstalk", "readout"]
-    if "unequal_split" in model.features:
-        features.append("unequal_split")
-    return DetectorModel(model.family, model.size, tuple(features), model.saturation)
 
 
 @dataclass(frozen=True)
@@ -177,8 +139,7 @@ def compare_models(
         raise InputError(f"{scan.source}: no candidate model fits a scan with {scan.n_outcomes} outcomes")
     fits, skipped = {}, {}
     show = not quiet and sys.stderr.isatty()
-    # simplest first, so that each candidate can start from its best nested fit
-    ordered = sorted(candidates, key=lambda m: (m.family, len(m.features)))
+    ordered = ranking_order(candidates)
     for i, model in enumerate(ordered):
         if show:
             print(f"\rranking models {i + 1}/{len(ordered)}: {model.spec:<50}", end="", file=sys.stderr, flush=True)

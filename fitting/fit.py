@@ -23,18 +23,17 @@ import numpy as np
 from scipy import optimize
 from scipy.special import chdtrc, chdtri
 
-from povmfit.models import DetectorModel, choose_cutoff
+from povmfit.models import DetectorModel
 
 from ._io import InputError
 from .objective import (
-    PROBABILITY_FLOOR, cell_residual_derivative, cell_residuals, compiled, fixed_probe_distributions,
-    povm_and_jacobian,
+    PROBABILITY_FLOOR, SCALE_SPAN, cell_residual_derivative, cell_residuals, compiled, fit_cutoff,
+    fixed_probe_distributions, povm_and_jacobian,
 )
 
 __all__ = ["fit_scan", "FitResult", "FitNotConverged", "CHI2_95"]
 
 CHI2_95 = chdtri(1, 0.05)  # 3.841: deviance rise of a 95 % profile interval
-_SCALE_SPAN = 6.0  # calibration scale explored within 1 +- 6 sigma
 
 
 class FitNotConverged(UserWarning):
@@ -128,23 +127,6 @@ def check_identifiable(scan, model: DetectorModel) -> None:
 # optimiser tolerances (relative change of parameters and deviance): tight for the reported
 # fit, looser for the many fits of a model ranking (deviance to ~1e-7 relative is plenty there)
 _TOLERANCES = {True: 1e-12, False: 1e-9}
-_CUTOFFS: dict = {}
-
-
-def _cutoff(scan, calibration_uncertainty, tolerance) -> int:
-    """Photon-number cutoff for the scan's probes (remembered per probe set: refits of the
-    same probes, as in bootstraps and cross-validation, do not recompute it)."""
-    top = 1.0 + _SCALE_SPAN * calibration_uncertainty if calibration_uncertainty else 1.0
-    coherent = np.asarray(scan.coherent_photons, float) * top
-    thermal = np.asarray(scan.thermal_photons, float) * top
-    key = (coherent.tobytes(), thermal.tobytes(), float(tolerance))
-    if key not in _CUTOFFS:
-        if len(_CUTOFFS) > 256:
-            _CUTOFFS.clear()
-        _CUTOFFS[key] = choose_cutoff(coherent, thermal, tolerance)
-    return _CUTOFFS[key]
-
-
 # value a switched-off feature's parameter takes inside a larger compiled model
 NULL_VALUES = {"dark_probability": 0.0, "dark_mean": 0.0, "crosstalk_probability": 0.0, "readout_width": 1e-3}
 
@@ -183,7 +165,7 @@ class _Problem:
         self.shots = np.asarray(scan.shots, float)[self.active]
         bounds = model.bounds()
         if self.calibrated:
-            bounds["probe_scale"] = (max(1.0 - _SCALE_SPAN * self.width, 0.05), 1.0 + _SCALE_SPAN * self.width)
+            bounds["probe_scale"] = (max(1.0 - SCALE_SPAN * self.width, 0.05), 1.0 + SCALE_SPAN * self.width)
         self.bounds = bounds
         self.bounds_list = [bounds[n] for n in self.names]
 
@@ -395,7 +377,7 @@ def fit_scan(
         raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
     check_identifiable(scan if probe_mask is None else scan.subset(np.asarray(probe_mask, bool)), model)
     calibration_uncertainty = calibration_uncertainty or None
-    n_photons = _cutoff(scan, calibration_uncertainty, tolerance)
+    n_photons = fit_cutoff(scan, calibration_uncertainty, tolerance)
     problem = _Problem(scan, model, compute_model or model, n_photons, weighting, calibration_uncertainty, probe_mask)
     names = problem.names
     start = _starting_point(problem, initial or {})

@@ -18,7 +18,7 @@ import pickle
 import subprocess
 import sys
 
-__all__ = ["start_model_free", "model_free_reconstructions", "ModelFreeJob", "RECONSTRUCTION_BOOTSTRAP"]
+__all__ = ["start_model_free", "model_free_reconstructions", "ModelFreeJob", "ranking_request", "RECONSTRUCTION_BOOTSTRAP"]
 
 RECONSTRUCTION_BOOTSTRAP = 50  # fewer bootstrap resamples than `povmfit reconstruct` (100)
 
@@ -83,9 +83,22 @@ class ModelFreeJob:
             self._process = None
 
 
-def start_model_free(scan_path, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> ModelFreeJob:
-    """Launch the reconstructions of the scan file in a helper process."""
-    request = json.dumps({"scan": str(scan_path), "seed": int(seed), "bootstrap": int(bootstrap)})
+def ranking_request(args):
+    """What the helper process needs to prepare a model ranking (None with an explicit model)."""
+    if args.model != "auto":
+        return None
+    return {"candidates": args.candidates, "calibration_uncertainty": args.calibration_uncertainty}
+
+
+def start_model_free(scan_path, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, ranking=None) -> ModelFreeJob:
+    """Launch the reconstructions of the scan file in a helper process.
+
+    ``ranking`` ({"candidates": comma-separated specs or None, "calibration_uncertainty": REL
+    or None}) asks the helper to first compile the programs a model ranking will need after
+    its first one (which this process compiles itself meanwhile); without it, or when they
+    are all stored already, the helper goes straight to the reconstructions.
+    """
+    request = json.dumps({"scan": str(scan_path), "seed": int(seed), "bootstrap": int(bootstrap), "ranking": ranking})
     try:
         process = subprocess.Popen(
             [sys.executable, "-m", "povmfit.fitting.model_free"],
@@ -106,10 +119,28 @@ def _serve() -> int:
 
     enable_compilation_cache()
     scan = load_scan(request["scan"])
+    if request.get("ranking"):
+        try:
+            _prepare_ranking_programs(scan, **request["ranking"])
+        except Exception:  # noqa: BLE001 - an optimisation only; the ranking compiles what it lacks
+            pass
     parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
     sys.stdout.buffer.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
     sys.stdout.flush()
     return 0
+
+
+def _prepare_ranking_programs(scan, candidates=None, calibration_uncertainty=None) -> None:
+    from povmfit.models import parse_model_spec
+
+    from .candidates import candidate_models, programs_in_ranking_order
+    from .objective import prepare_programs
+
+    if candidates:
+        models = [parse_model_spec(spec) for spec in candidates.split(",") if spec.strip()]
+    else:
+        models = candidate_models(scan.n_outcomes)
+    prepare_programs(scan, programs_in_ranking_order(models)[1:], calibration_uncertainty or None)
 
 
 if __name__ == "__main__":

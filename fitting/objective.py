@@ -23,16 +23,34 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from povmfit.models import DetectorModel, probe_distributions, probe_distributions_numpy
+from povmfit.models import DetectorModel, choose_cutoff, probe_distributions, probe_distributions_numpy
 
 from ._cache import StoredPrograms
 
 __all__ = [
-    "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "PROBABILITY_FLOOR", "cell_residuals",
+    "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
+    "prepare_programs", "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals",
     "cell_residual_derivative",
 ]
 
 PROBABILITY_FLOOR = 1e-300
+SCALE_SPAN = 6.0  # a fitted probe-calibration scale is explored within 1 +- 6 sigma
+_CUTOFFS: dict = {}
+
+
+def fit_cutoff(scan, calibration_uncertainty=None, tolerance: float = 1e-10) -> int:
+    """Photon-number cutoff of a fit to the scan's probes, wide enough for the largest probe
+    scale the fit explores (remembered per probe set: refits of the same probes, as in
+    bootstraps and cross-validation, do not recompute it)."""
+    top = 1.0 + SCALE_SPAN * calibration_uncertainty if calibration_uncertainty else 1.0
+    coherent = np.asarray(scan.coherent_photons, float) * top
+    thermal = np.asarray(scan.thermal_photons, float) * top
+    key = (coherent.tobytes(), thermal.tobytes(), float(tolerance))
+    if key not in _CUTOFFS:
+        if len(_CUTOFFS) > 256:
+            _CUTOFFS.clear()
+        _CUTOFFS[key] = choose_cutoff(coherent, thermal, tolerance)
+    return _CUTOFFS[key]
 
 
 def predicted_probabilities(model: DetectorModel, params, scale, coherent, thermal, n_photons: int):
@@ -161,3 +179,21 @@ def cell_residual_derivative(q, residuals, counts, shots, weighting: str = "devi
         safe_r = np.where(small, 1.0, residuals)
         dr_de = np.where(small, -1.0 / np.sqrt(expected), -(difference / expected) / safe_r)
     return dr_de * shots[:, None]
+
+
+def prepare_programs(scan, compute_models, calibration_uncertainty=None) -> None:
+    """Compile and store the programs that fits of ``scan`` with these compute models will
+    call, with exactly the arguments' shapes the fits use (see ``fit._Problem``); programs
+    already in the store are left alone."""
+    n_photons = fit_cutoff(scan, calibration_uncertainty)
+    coherent = np.asarray(scan.coherent_photons, float)
+    thermal = np.asarray(scan.thermal_photons, float)
+    for model in compute_models:
+        start = model.starting_values()
+        x = np.array([start[name] for name in model.parameter_names], dtype=float)
+        if calibration_uncertainty:
+            program, args = compiled(model, n_photons, "deviance", True).probabilities_and_jacobian, (np.append(x, 1.0), coherent, thermal)
+        else:
+            program, args = povm_and_jacobian(model, n_photons), (x,)
+        if not program.is_stored(*args):
+            program(*args)

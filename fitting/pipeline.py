@@ -15,11 +15,12 @@ import povmfit
 from povmfit.models import parse_model_spec, povm_wigner
 
 from ._io import InputError, write_json
-from .compare import family_compute_model, candidate_models, compare_models
+from .candidates import candidate_models, family_compute_model
+from .compare import compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
-from .model_free import ModelFreeJob, start_model_free
+from .model_free import ModelFreeJob, ranking_request, start_model_free
 from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors"]
@@ -62,7 +63,7 @@ def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | 
     command line starts them before importing this module); started here when absent.
     """
     if model_free is None:
-        model_free = start_model_free(scan_path, args.seed)
+        model_free = start_model_free(scan_path, args.seed, ranking=ranking_request(args))
     try:
         scan = load_scan(scan_path)
         if args.model != "auto":  # refuse what can be refused before any work starts
@@ -157,16 +158,17 @@ def model_seen_through_reconstruction(scan, result, reconstruction, seed):
     seeded) and reconstructed with the data's regularisation strength, so the smoothing bias
     and the constraint effects of the reconstruction act on the model exactly as on the data.
     """
-    from .reconstruct import build_layout, solve_povm, solve_povm_batch, weighted_operator
+    from .reconstruct import build_layout, solve_povm_batch, weighted_operator
 
     shots = np.asarray(scan.shots)
     operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
                                  shots / shots.mean())
     q = np.clip(result.predicted, 0.0, None)
     q = q / q.sum(axis=1, keepdims=True)
-    # warm start at the noiseless reconstruction: the solutions do not depend on the start
-    # (checked against cold starts), only the time does
-    start, _, _ = solve_povm(operator, q, reconstruction.regularisation)
+    # warm start at the data's reconstruction (a solution of the same problem for a nearby
+    # scan): the solutions do not depend on the start (checked against cold starts), only the
+    # time does
+    start = reconstruction.theta
     rng = np.random.default_rng([seed, 1])
     simulated = np.stack([rng.multinomial(shots, q) for _ in range(CROSS_CHECK_SIMULATIONS)]) / shots[:, None]
     draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, start, rtol=1e-11)
