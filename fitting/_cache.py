@@ -135,7 +135,9 @@ def _export_compile_and_store(jitted, args, path: Path, claim: Path):
     from jax import export
 
     try:
-        claim.touch(exist_ok=False)
+        handle = os.open(claim, os.O_CREAT | os.O_EXCL | os.O_WRONLY)
+        os.write(handle, str(os.getpid()).encode())
+        os.close(handle)
     except OSError:
         claim = None  # another process claimed it meanwhile: compile anyway, do not wait
     try:
@@ -149,15 +151,29 @@ def _export_compile_and_store(jitted, args, path: Path, claim: Path):
 
 
 def _wait_for_claim(claim: Path, path: Path) -> None:
-    """Wait while another process holds a fresh claim on the program at ``path``."""
+    """Wait while another living process holds a fresh claim on the program at ``path``."""
     while not path.exists():
         try:
             age = time.time() - claim.stat().st_mtime
-        except OSError:
+            holder = int(claim.read_text() or 0)
+        except (OSError, ValueError):
             return  # no claim (or it was just released)
-        if age > _CLAIM_PATIENCE_S:
+        if age > _CLAIM_PATIENCE_S or not _alive(holder):
+            claim.unlink(missing_ok=True)  # abandoned (its process was stopped)
             return
         time.sleep(0.01)
+
+
+def _alive(pid: int) -> bool:
+    if pid <= 0:
+        return False
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True  # exists, owned by someone else
+    return True
 
 
 def _write_atomically(path: Path, data: bytes) -> None:

@@ -62,20 +62,15 @@ class ModelFreeJob:
         if self._process is None:
             return None
         try:
-            output = self._process.stdout.read()
-            self._process.wait()
-            if self._process.returncode != 0:
-                return None
-            message = pickle.loads(output)
+            # the helper closes its output once the reconstructions are written (it may go on
+            # compiling programs for the ranking): read to the end of the output, not of the process
+            message = pickle.loads(self._process.stdout.read())
         except Exception:  # noqa: BLE001 - any failure of the helper means: compute here
             return None
-        finally:
-            self._process.stdout.close()
-            self._process = None
         return message["parts"] if message.get("sha256") == sha256 else None
 
     def cancel(self) -> None:
-        """Stop the helper (bad input, or an error in this process)."""
+        """Stop the helper (bad input, an error here, or work of its that is no longer needed)."""
         if self._process is not None:
             self._process.kill()
             self._process.wait()
@@ -94,9 +89,9 @@ def start_model_free(scan_path, seed: int, bootstrap: int = RECONSTRUCTION_BOOTS
     """Launch the reconstructions of the scan file in a helper process.
 
     ``ranking`` ({"candidates": comma-separated specs or None, "calibration_uncertainty": REL
-    or None}) asks the helper to first compile the programs a model ranking will need after
-    its first one (which this process compiles itself meanwhile); without it, or when they
-    are all stored already, the helper goes straight to the reconstructions.
+    or None}) asks the helper, once the reconstructions are delivered, to compile the
+    programs a model ranking will need after its first one, last needed first, while this
+    process ranks from the other end (programs already stored are skipped).
     """
     request = json.dumps({"scan": str(scan_path), "seed": int(seed), "bootstrap": int(bootstrap), "ranking": ranking})
     try:
@@ -119,14 +114,15 @@ def _serve() -> int:
 
     enable_compilation_cache()
     scan = load_scan(request["scan"])
+    parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
+    sys.stdout.buffer.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
+    sys.stdout.flush()
+    sys.stdout.close()
     if request.get("ranking"):
         try:
             _prepare_ranking_programs(scan, **request["ranking"])
         except Exception:  # noqa: BLE001 - an optimisation only; the ranking compiles what it lacks
             pass
-    parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
-    sys.stdout.buffer.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
-    sys.stdout.flush()
     return 0
 
 
@@ -140,7 +136,8 @@ def _prepare_ranking_programs(scan, candidates=None, calibration_uncertainty=Non
         models = [parse_model_spec(spec) for spec in candidates.split(",") if spec.strip()]
     else:
         models = candidate_models(scan.n_outcomes)
-    prepare_programs(scan, programs_in_ranking_order(models)[1:], calibration_uncertainty or None)
+    # last needed first: the ranking compiles from the other end, claims keep the two apart
+    prepare_programs(scan, programs_in_ranking_order(models)[1:][::-1], calibration_uncertainty or None)
 
 
 if __name__ == "__main__":

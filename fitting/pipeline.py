@@ -77,7 +77,7 @@ def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | 
         model, comparison, result = _rank_and_fit(scan, args)
         parts = model_free.result(scan)
     finally:
-        model_free.cancel()
+        model_free.cancel()  # a helper still compiling programs for the ranking is not needed now
     cross = _cross_check_section(scan, result, parts, args.seed)
 
     options = {
