@@ -47,3 +47,34 @@ def test_store_off_means_plain_tracing(monkeypatch):
     monkeypatch.setitem(_cache._STORE, "folder", None)
     f = jax.jit(lambda x: 2 * x)
     assert _cache.stored_program(f, "off", (np.ones(2),)) is f
+
+
+def _claim_and_program_paths(store, jitted, args, label):
+    key = _cache._program_key(label, args)
+    return store / f"{key}.claim", store / f"{key}.hlo"
+
+
+def test_claim_of_a_stopped_process_is_not_waited_for(store, monkeypatch):
+    jitted, args = _probabilities_and_jacobian()
+    claim, path = _claim_and_program_paths(store, jitted, args, "stale")
+    claim.write_text("999999999")  # no such process
+    monkeypatch.setattr(_cache.time, "sleep", lambda s: pytest.fail("waited for a dead process"))
+    _cache.stored_program(jitted, "stale", args)
+    assert path.exists() and not claim.exists()
+
+
+def test_live_claim_is_waited_for_and_its_program_used(store, monkeypatch):
+    import os
+
+    jitted, args = _probabilities_and_jacobian()
+    claim, path = _claim_and_program_paths(store, jitted, args, "claimed")
+    claim.write_text(str(os.getpid()))  # a living holder
+
+    def other_process_finishes(seconds):
+        _cache._write_atomically(path, jax.export.export(jitted)(*args).serialize())
+        claim.unlink()
+
+    monkeypatch.setattr(_cache.time, "sleep", other_process_finishes)
+    monkeypatch.setattr(_cache, "_export_compile_and_store", lambda *a: pytest.fail("compiled it twice"))
+    program = _cache.stored_program(jitted, "claimed", args)
+    np.testing.assert_array_equal(np.asarray(program(*args)[0]), np.asarray(jitted(*args)[0]))
