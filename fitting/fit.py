@@ -125,8 +125,9 @@ def check_identifiable(scan, model: DetectorModel) -> None:
 
 
 # optimiser tolerances (relative change of parameters and deviance): tight for the reported
-# fit, looser for the many fits of a model ranking (deviance to ~1e-7 relative is plenty there)
-_TOLERANCES = {True: 1e-12, False: 1e-9}
+# fit, looser for the many fits of a model ranking, where deviance differences of order 0.1
+# matter (on the demo scan 1e-8 and 1e-9 give the same deviances to 1e-6)
+_TOLERANCES = {True: 1e-12, False: 1e-8}
 # value a switched-off feature's parameter takes inside a larger compiled model
 NULL_VALUES = {"dark_probability": 0.0, "dark_mean": 0.0, "crosstalk_probability": 0.0, "readout_width": 1e-3}
 
