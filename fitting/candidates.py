@@ -9,7 +9,7 @@ import itertools
 
 from povmfit.models import DetectorModel
 
-__all__ = ["candidate_models", "family_compute_model", "ranking_order", "programs_in_ranking_order"]
+__all__ = ["candidate_models", "family_compute_model", "ranking_order", "programs_in_ranking_order", "programs_needed"]
 
 _MAX_SPLIT = 16
 
@@ -66,3 +66,18 @@ def programs_in_ranking_order(candidates) -> list[DetectorModel]:
         if compute not in out:
             out.append(compute)
     return out
+
+
+def programs_needed(scan, model: str = "auto", candidates: str | None = None) -> list[DetectorModel]:
+    """The compute models the fit command will call, in the order it first needs them (the
+    ranking's when ``model`` is "auto", else the model itself); [] for specs it will refuse."""
+    from povmfit.models import parse_model_spec
+
+    try:
+        if model != "auto":
+            return [parse_model_spec(model)]
+        if candidates:
+            return programs_in_ranking_order([parse_model_spec(s) for s in candidates.split(",") if s.strip()])
+        return programs_in_ranking_order(candidate_models(scan.n_outcomes))
+    except ValueError:
+        return []

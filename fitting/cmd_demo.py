@@ -66,7 +66,7 @@ def register(subparsers):
 
 
 def run(args) -> int:
-    from .cmd_fit import print_summary
+    from .cmd_fit import print_summary, run_fit_command
     from .model_free import ranking_request, start_model_free
 
     out_dir = Path(args.out)
@@ -81,9 +81,10 @@ def run(args) -> int:
         print(f"povmfit demo: simulated scan of an invented 8-bin click detector -> {scan_copy}")
         print(f"true values: {DEMO_TRUTH}\n")
     model_free = start_model_free(scan_copy, fit_args.seed, ranking=ranking_request(fit_args))
-    from .pipeline import run_fit_pipeline
-
-    outcome = run_fit_pipeline(scan_copy, out_dir, fit_args, model_free)
+    try:
+        outcome = run_fit_command(scan_copy, out_dir, fit_args, model_free)
+    finally:
+        model_free.cancel()
     print_summary(outcome, fit_args)
     if not args.quiet and not args.json:
         print(f"\nopen {out_dir / 'report.html'} in a browser to see the fit, the POVM and the Wigner functions.")

@@ -66,11 +66,30 @@ def run(args) -> int:
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
     # on the second core, before the heavy imports
     model_free = start_model_free(args.scan, args.seed, ranking=ranking_request(args))
-    from .pipeline import run_fit_pipeline
-
-    outcome = run_fit_pipeline(args.scan, out_dir, args, model_free)
+    try:
+        outcome = run_fit_command(args.scan, out_dir, args, model_free)
+    finally:
+        model_free.cancel()
     print_summary(outcome, args)
     return 0
+
+
+def run_fit_command(scan_path, out_dir, args, model_free):
+    """Load the scan, load the compiled programs in the background while the fitting libraries
+    are imported, then run the pipeline."""
+    from .candidates import programs_needed
+    from .objective import load_programs_in_background
+    from .scan import load_scan
+
+    scan = load_scan(scan_path)
+    # the modules that receive the helper's reconstructions come after the programs: their
+    # imports fill the gaps the ranking leaves while JAX computes
+    load_programs_in_background(scan, programs_needed(scan, args.model, args.candidates), args.calibration_uncertainty,
+                                then_import=("povmfit.fitting.reconstruct", "povmfit.fitting.pointwise_wigner",
+                                             "povmfit.fitting.cross_check", "povmfit.fitting.report"))
+    from .pipeline import run_fit_pipeline
+
+    return run_fit_pipeline(scan_path, out_dir, args, model_free, scan=scan)
 
 
 def print_summary(outcome, args) -> None:

@@ -14,6 +14,7 @@ This module imports nothing heavy at import time: it is loaded before JAX.
 from __future__ import annotations
 
 import json
+import os
 import pickle
 import subprocess
 import sys
@@ -115,9 +116,10 @@ def _serve() -> int:
     enable_compilation_cache()
     scan = load_scan(request["scan"])
     parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
-    sys.stdout.buffer.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
     sys.stdout.flush()
-    sys.stdout.close()
+    with os.fdopen(os.dup(1), "wb") as output:
+        output.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
+    os.close(1)  # end of output for the reader, also while programs are compiled below
     if request.get("ranking"):
         try:
             _prepare_ranking_programs(scan, **request["ranking"])
@@ -127,18 +129,13 @@ def _serve() -> int:
 
 
 def _prepare_ranking_programs(scan, candidates=None, calibration_uncertainty=None) -> None:
-    from povmfit.models import parse_model_spec
-
-    from .candidates import candidate_models, programs_in_ranking_order
+    from .candidates import programs_needed
     from .objective import prepare_programs
 
-    if candidates:
-        models = [parse_model_spec(spec) for spec in candidates.split(",") if spec.strip()]
-    else:
-        models = candidate_models(scan.n_outcomes)
-    # last needed first: the ranking compiles from the other end, claims keep the two apart
-    prepare_programs(scan, programs_in_ranking_order(models)[1:][::-1], calibration_uncertainty or None)
+    # last needed first: the main process works from the other end, claims keep the two apart
+    prepare_programs(scan, programs_needed(scan, "auto", candidates)[1:][::-1], calibration_uncertainty or None)
 
 
 if __name__ == "__main__":
-    sys.exit(_serve())
+    code = _serve()
+    os._exit(code)  # nothing left to flush: skip the interpreter's teardown

@@ -17,6 +17,8 @@ arguments, so refits (bootstrap, profiles, cross-validation) reuse the compiled 
 """
 from __future__ import annotations
 
+import importlib
+import threading
 from functools import lru_cache
 
 import jax
@@ -29,7 +31,7 @@ from ._cache import StoredPrograms
 
 __all__ = [
     "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
-    "prepare_programs", "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals",
+    "prepare_programs", "load_programs_in_background", "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals",
     "cell_residual_derivative",
 ]
 
@@ -181,10 +183,11 @@ def cell_residual_derivative(q, residuals, counts, shots, weighting: str = "devi
     return dr_de * shots[:, None]
 
 
-def prepare_programs(scan, compute_models, calibration_uncertainty=None) -> None:
+def prepare_programs(scan, compute_models, calibration_uncertainty=None, only_missing: bool = True) -> None:
     """Compile and store the programs that fits of ``scan`` with these compute models will
-    call, with exactly the arguments' shapes the fits use (see ``fit._Problem``); programs
-    already in the store are left alone."""
+    call, with exactly the arguments' shapes the fits use (see ``fit._Problem``). With
+    ``only_missing`` programs already in the store are left alone; otherwise they are loaded
+    into this process."""
     n_photons = fit_cutoff(scan, calibration_uncertainty)
     coherent = np.asarray(scan.coherent_photons, float)
     thermal = np.asarray(scan.thermal_photons, float)
@@ -195,5 +198,23 @@ def prepare_programs(scan, compute_models, calibration_uncertainty=None) -> None
             program, args = compiled(model, n_photons, "deviance", True).probabilities_and_jacobian, (np.append(x, 1.0), coherent, thermal)
         else:
             program, args = povm_and_jacobian(model, n_photons), (x,)
-        if not program.is_stored(*args):
+        if not (only_missing and program.is_stored(*args)):
             program(*args)
+
+
+def load_programs_in_background(scan, compute_models, calibration_uncertainty=None, then_import=()):
+    """Start a thread that loads (or compiles) the programs of ``compute_models`` into this
+    process, in order, and then imports the modules ``then_import``, while the caller does
+    other work (loading a compiled program runs outside the interpreter lock for the most
+    part). Returns the started thread."""
+    def load():
+        try:
+            prepare_programs(scan, compute_models, calibration_uncertainty, only_missing=False)
+            for name in then_import:
+                importlib.import_module(name)
+        except Exception:  # noqa: BLE001 - an optimisation only; the fits load what they lack
+            pass
+
+    thread = threading.Thread(target=load, name="povmfit-programs", daemon=True)
+    thread.start()
+    return thread

@@ -56,16 +56,17 @@ def _select_model(scan, args):
     return comparison.chosen, comparison
 
 
-def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | None = None) -> dict:
+def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | None = None, scan=None) -> dict:
     """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict.
 
     ``model_free``: the reconstructions already started by :func:`start_model_free` (the
     command line starts them before importing this module); started here when absent.
+    ``scan``: the scan already loaded from ``scan_path``, if it is.
     """
     if model_free is None:
         model_free = start_model_free(scan_path, args.seed, ranking=ranking_request(args))
     try:
-        scan = load_scan(scan_path)
+        scan = scan if scan is not None else load_scan(scan_path)
         if args.model != "auto":  # refuse what can be refused before any work starts
             if args.candidates:
                 raise InputError("--candidates is only used with --model auto")
