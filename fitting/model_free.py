@@ -4,24 +4,30 @@ The reconstructions (full diagonal POVM, pointwise and smoothed Wigner values, p
 do not depend on the fit. :func:`start_model_free` launches them in a fresh Python process as
 soon as the command line is parsed, so they run on the second core while this process
 imports its libraries and ranks and fits the models; :meth:`ModelFreeJob.result` collects
-them. The helper process reads the scan file itself and reports the file's SHA-256: results
-for a different file are not used. Whenever the helper fails (or cannot start), the
-reconstructions are computed here instead, with the same functions and seed, so the outputs
-never depend on which process made them.
+them. Then the fitted model's outcome probabilities go back to the helper, which
+reconstructs scans simulated from them for the cross-check (:meth:`ModelFreeJob.send_model`,
+:meth:`ModelFreeJob.under_model`) while this process prepares the rest. The helper reads the
+scan file itself and reports the file's SHA-256: results for a different file are not used.
+Whenever the helper fails (or cannot start), everything is computed here instead, with the
+same functions and seeds, so the outputs never depend on which process made them.
 
 This module imports nothing heavy at import time: it is loaded before JAX.
 """
 from __future__ import annotations
 
-import json
 import os
 import pickle
+import struct
 import subprocess
 import sys
 
-__all__ = ["start_model_free", "model_free_reconstructions", "ModelFreeJob", "ranking_request", "RECONSTRUCTION_BOOTSTRAP"]
+__all__ = [
+    "start_model_free", "model_free_reconstructions", "reconstructions_under_model", "ModelFreeJob", "ranking_request",
+    "RECONSTRUCTION_BOOTSTRAP", "CROSS_CHECK_SIMULATIONS",
+]
 
 RECONSTRUCTION_BOOTSTRAP = 50  # fewer bootstrap resamples than `povmfit reconstruct` (100)
+CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 
 
 def model_free_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> dict:
@@ -50,6 +56,7 @@ class ModelFreeJob:
 
     def __init__(self, process, seed: int, bootstrap: int):
         self._process = process
+        self._model_sent = False
         self.seed = seed
         self.bootstrap = bootstrap
 
@@ -57,26 +64,100 @@ class ModelFreeJob:
         """The reconstructions of ``scan``: from the helper when it succeeded for this very
         file, otherwise computed here."""
         parts = self._collect(scan.sha256)
-        return parts if parts is not None else model_free_reconstructions(scan, self.seed, self.bootstrap)
+        if parts is None:
+            self.cancel()
+            return model_free_reconstructions(scan, self.seed, self.bootstrap)
+        return parts
 
     def _collect(self, sha256: str):
         if self._process is None:
             return None
         try:
-            # the helper closes its output once the reconstructions are written (it may go on
-            # compiling programs for the ranking): read to the end of the output, not of the process
-            message = pickle.loads(self._process.stdout.read())
+            message = _receive(self._process.stdout)
         except Exception:  # noqa: BLE001 - any failure of the helper means: compute here
             return None
-        return message["parts"] if message.get("sha256") == sha256 else None
+        return message["parts"] if message and message.get("sha256") == sha256 else None
+
+    def send_model(self, q) -> None:
+        """Hand the fitted model's outcome probabilities q[p, k] to the helper, which then
+        reconstructs scans simulated from them (see :func:`reconstructions_under_model`)."""
+        if self._process is None:
+            return
+        try:
+            _send(self._process.stdin, {"q": q})
+            self._model_sent = True
+        except OSError:
+            self.cancel()
+
+    def under_model(self, scan, q, reconstruction):
+        """(mean, spread) of :func:`reconstructions_under_model`: from the helper when
+        :meth:`send_model` reached it (call :meth:`result` first), otherwise computed here."""
+        if self._process is not None and self._model_sent:
+            try:
+                message = _receive(self._process.stdout)
+                if message is not None:
+                    return message["mean"], message["spread"]
+            except Exception:  # noqa: BLE001 - compute here instead
+                pass
+            self.cancel()
+        return reconstructions_under_model(scan, q, reconstruction, self.seed)
 
     def cancel(self) -> None:
         """Stop the helper (bad input, an error here, or work of its that is no longer needed)."""
         if self._process is not None:
             self._process.kill()
             self._process.wait()
-            self._process.stdout.close()
+            for stream in (self._process.stdin, self._process.stdout):
+                if stream is not None:
+                    try:
+                        stream.close()
+                    except OSError:
+                        pass
             self._process = None
+
+
+def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations: int = CROSS_CHECK_SIMULATIONS):
+    """Mean and spread of the reconstruction under a model: (n_outcomes, n_photons) each.
+
+    ``simulations`` scans are simulated from the model's outcome probabilities q[p, k] (same
+    probes and shots, seeded) and reconstructed with the data's regularisation strength, so
+    the smoothing bias and the constraint effects of the reconstruction act on the model
+    exactly as on the data.
+    """
+    import numpy as np
+
+    from .reconstruct import build_layout, solve_povm_batch, weighted_operator
+
+    shots = np.asarray(scan.shots)
+    operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
+                                 shots / shots.mean())
+    q = np.clip(np.asarray(q, dtype=float), 0.0, None)
+    q = q / q.sum(axis=1, keepdims=True)
+    rng = np.random.default_rng([seed, 1])
+    simulated = np.stack([rng.multinomial(shots, q) for _ in range(simulations)]) / shots[:, None]
+    # warm start at the data's reconstruction (a solution of the same problem for a nearby
+    # scan): the solutions do not depend on the start (checked against cold starts), only the
+    # time does
+    draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, reconstruction.theta, rtol=1e-11)
+    return draws.mean(axis=0), draws.std(axis=0, ddof=1)
+
+
+def _send(stream, message) -> None:
+    data = pickle.dumps(message)
+    stream.write(struct.pack(">Q", len(data)) + data)
+    stream.flush()
+
+
+def _receive(stream):
+    """One length-prefixed pickled message, or None at the end of the stream."""
+    head = stream.read(8)
+    if len(head) < 8:
+        return None
+    size = struct.unpack(">Q", head)[0]
+    data = stream.read(size)
+    if len(data) < size:
+        return None
+    return pickle.loads(data)
 
 
 def ranking_request(args):
@@ -94,37 +175,45 @@ def start_model_free(scan_path, seed: int, bootstrap: int = RECONSTRUCTION_BOOTS
     programs a model ranking will need after its first one, last needed first, while this
     process ranks from the other end (programs already stored are skipped).
     """
-    request = json.dumps({"scan": str(scan_path), "seed": int(seed), "bootstrap": int(bootstrap), "ranking": ranking})
+    request = {"scan": str(scan_path), "seed": int(seed), "bootstrap": int(bootstrap), "ranking": ranking}
     try:
         process = subprocess.Popen(
             [sys.executable, "-m", "povmfit.fitting.model_free"],
             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
         )
-        process.stdin.write(request.encode())
-        process.stdin.close()
+        _send(process.stdin, request)
     except OSError:
         process = None
     return ModelFreeJob(process, seed, bootstrap)
 
 
 def _serve() -> int:
-    """Helper process: read the request on stdin, write the pickled result on stdout."""
-    request = json.loads(sys.stdin.read())
+    """Helper process: messages (length-prefixed pickles) on stdin and stdout.
+
+    in: the request; out: the reconstructions; then, with a ranking request, programs are
+    compiled; in: the fitted model's q (or the end of input); out: the reconstructions
+    under the model.
+    """
+    output = os.fdopen(os.dup(1), "wb")
+    os.dup2(2, 1)  # stray prints cannot corrupt the messages
+    request = _receive(sys.stdin.buffer)
     from ._cache import enable_compilation_cache
     from .scan import load_scan
 
     enable_compilation_cache()
     scan = load_scan(request["scan"])
     parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
-    sys.stdout.flush()
-    with os.fdopen(os.dup(1), "wb") as output:
-        output.write(pickle.dumps({"sha256": scan.sha256, "parts": parts}))
-    os.close(1)  # end of output for the reader, also while programs are compiled below
+    _send(output, {"sha256": scan.sha256, "parts": parts})
     if request.get("ranking"):
         try:
             _prepare_ranking_programs(scan, **request["ranking"])
         except Exception:  # noqa: BLE001 - an optimisation only; the ranking compiles what it lacks
             pass
+    model = _receive(sys.stdin.buffer)
+    if model is not None:
+        mean, spread = reconstructions_under_model(scan, model["q"], parts["reconstruction"], request["seed"])
+        _send(output, {"mean": mean, "spread": spread})
+    output.close()
     return 0
 
 

@@ -20,12 +20,11 @@ from .compare import compare_models
 from .datasheet import datasheet_document
 from .detector_file import DetectorRecord, save_detector
 from .fit import FitNotConverged, check_identifiable, fit_scan
-from .model_free import ModelFreeJob, ranking_request, start_model_free
+from .model_free import CROSS_CHECK_SIMULATIONS, ModelFreeJob, ranking_request, start_model_free
 from .scan import load_scan
 
 __all__ = ["run_fit_pipeline", "model_povm_with_errors"]
 
-CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 
 
 def _parse_model_option(text: str, option: str = "--model"):
@@ -76,10 +75,11 @@ def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | 
                 _parse_model_option(spec, "--candidates")
         # the model-free reconstructions run in their own process meanwhile
         model, comparison, result = _rank_and_fit(scan, args)
+        model_free.send_model(result.predicted)  # for the helper's simulations, once its reconstructions are done
         parts = model_free.result(scan)
+        cross = _cross_check_section(scan, result, parts, model_free)
     finally:
-        model_free.cancel()  # a helper still compiling programs for the ranking is not needed now
-    cross = _cross_check_section(scan, result, parts, args.seed)
+        model_free.cancel()
 
     options = {
         "model": args.model,
@@ -152,43 +152,20 @@ def _single_row(result) -> list:
     }]
 
 
-def model_seen_through_reconstruction(scan, result, reconstruction, seed):
-    """Mean and spread of the reconstruction under the fitted model: (n_outcomes, n_photons) each.
-
-    Scans are simulated from the model's outcome probabilities (same probes and shots,
-    seeded) and reconstructed with the data's regularisation strength, so the smoothing bias
-    and the constraint effects of the reconstruction act on the model exactly as on the data.
-    """
-    from .reconstruct import build_layout, solve_povm_batch, weighted_operator
-
-    shots = np.asarray(scan.shots)
-    operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
-                                 shots / shots.mean())
-    q = np.clip(result.predicted, 0.0, None)
-    q = q / q.sum(axis=1, keepdims=True)
-    # warm start at the data's reconstruction (a solution of the same problem for a nearby
-    # scan): the solutions do not depend on the start (checked against cold starts), only the
-    # time does
-    start = reconstruction.theta
-    rng = np.random.default_rng([seed, 1])
-    simulated = np.stack([rng.multinomial(shots, q) for _ in range(CROSS_CHECK_SIMULATIONS)]) / shots[:, None]
-    draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, start, rtol=1e-11)
-    return draws.mean(axis=0), draws.std(axis=0, ddof=1)
-
-
-def _cross_check_section(scan, result, parts, seed: int = 0) -> dict:
-    """Compare the fit with the model-free reconstructions of the same scan."""
+def _cross_check_section(scan, result, parts, model_free: ModelFreeJob) -> dict:
+    """Compare the fit with the model-free reconstructions of the same scan; the
+    reconstructions of scans simulated from the fit come from ``model_free``."""
     from .cmd_reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
     from .cross_check import cross_check, model_pointwise_wigner
 
     coherent, thermal = scan.coherent_photons, scan.thermal_photons
     reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
     theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
-    theta_expected, theta_spread = model_seen_through_reconstruction(scan, result, reconstruction, seed)
-    # Under the model the reconstruction of the data is one draw from (theta_expected,
-    # theta_spread); the fit's own parameter uncertainty is added in quadrature.
     # The Wigner values are compared through the pointwise estimator applied to the exact model.
     model_pointwise = None if pointwise is None else model_pointwise_wigner(theta_model, pointwise, coherent, thermal)
+    # Under the model the reconstruction of the data is one draw from (theta_expected,
+    # theta_spread); the fit's own parameter uncertainty is added in quadrature.
+    theta_expected, theta_spread = model_free.under_model(scan, result.predicted, reconstruction)
     summary = cross_check(
         theta_expected, np.sqrt(theta_spread**2 + theta_se**2), reconstruction, pointwise,
         model_wigner=model_pointwise, reconstruction_stderr=np.zeros_like(reconstruction.stderr),

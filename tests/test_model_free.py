@@ -6,7 +6,9 @@ import numpy as np
 import pytest
 
 from povmfit.fitting.cmd_demo import demo_scan_path
-from povmfit.fitting.model_free import ModelFreeJob, model_free_reconstructions, start_model_free
+from povmfit.fitting.model_free import (
+    ModelFreeJob, model_free_reconstructions, reconstructions_under_model, start_model_free,
+)
 from povmfit.fitting.scan import load_scan
 
 
@@ -24,18 +26,33 @@ def _assert_same(a, b):
 
 
 def test_helper_process_matches_in_process_computation(scan):
-    # Source: the in-process computation with the same seed (common practice, no source).
+    # Source: the in-process computation with the same seeds (common practice, no source).
     job = start_model_free(demo_scan_path(), seed=3, bootstrap=5)
-    from_helper = job._collect(scan.sha256)
-    assert from_helper is not None, "the helper process did not deliver"
-    _assert_same(from_helper, model_free_reconstructions(scan, seed=3, bootstrap=5))
+    try:
+        from_helper = job._collect(scan.sha256)
+        assert from_helper is not None, "the helper process did not deliver"
+        here = model_free_reconstructions(scan, seed=3, bootstrap=5)
+        _assert_same(from_helper, here)
+        # a model: the reconstruction's own prediction of the probe frequencies
+        q = scan.counts / scan.shots[:, None]
+        job.send_model(q)
+        helper_mean, helper_spread = job.under_model(scan, q, here["reconstruction"])
+        assert job._process is not None, "the helper did not answer; the values were computed here"
+    finally:
+        job.cancel()
+    mean, spread = reconstructions_under_model(scan, q, here["reconstruction"], seed=3)
+    np.testing.assert_array_equal(helper_mean, mean)
+    np.testing.assert_array_equal(helper_spread, spread)
 
 
 def test_results_for_another_file_are_not_used(scan, tmp_path):
     other = tmp_path / "other.csv"
     other.write_text(demo_scan_path().read_text().replace("\n", "\r\n"))  # same numbers, other bytes
     job = start_model_free(other, seed=3, bootstrap=5)
-    assert job._collect(scan.sha256) is None
+    try:
+        assert job._collect(scan.sha256) is None
+    finally:
+        job.cancel()
 
 
 def test_failed_helper_falls_back_to_this_process(scan):
