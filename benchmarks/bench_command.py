@@ -19,7 +19,7 @@ import tempfile
 import time
 from pathlib import Path
 
-REPEATS = 3
+REPEATS = 5
 SCAN = Path(__file__).resolve().parents[1] / "fitting" / "data" / "demo_scan.csv"
 
 
