@@ -80,7 +80,8 @@ class ModelFreeJob:
 
     def send_model(self, q) -> None:
         """Hand the fitted model's outcome probabilities q[p, k] to the helper, which then
-        reconstructs scans simulated from them (see :func:`reconstructions_under_model`)."""
+        reconstructs scans simulated from them (see :func:`reconstructions_under_model`).
+        Call after :meth:`result`."""
         if self._process is None:
             return
         try:
