@@ -18,6 +18,7 @@ import hashlib
 import os
 import sys
 import tempfile
+import threading
 import time
 from functools import lru_cache
 from pathlib import Path
@@ -189,19 +190,23 @@ def _write_atomically(path: Path, data: bytes) -> None:
 class StoredPrograms:
     """Callable wrapper of a jitted function that resolves a stored program per argument shape."""
 
+    def __init__(self, jitted, label: str):
+        self._jitted = jitted
+        self._label = label
+        self._by_signature: dict = {}
+        self._resolving = threading.Lock()  # a program loaded in the background is not loaded twice
+
     def is_stored(self, *args) -> bool:
         """Whether the program for arguments shaped like ``args`` is in the store already."""
         folder = _STORE["folder"]
         return folder is not None and (folder / f"{_program_key(self._label, args)}.hlo").exists()
 
-    def __init__(self, jitted, label: str):
-        self._jitted = jitted
-        self._label = label
-        self._by_signature: dict = {}
-
     def __call__(self, *args):
         signature = _signature(args)
         program = self._by_signature.get(signature)
         if program is None:
-            program = self._by_signature[signature] = stored_program(self._jitted, self._label, args)
+            with self._resolving:
+                program = self._by_signature.get(signature)
+                if program is None:
+                    program = self._by_signature[signature] = stored_program(self._jitted, self._label, args)
         return program(*args)
