@@ -1,10 +1,10 @@
 """The model-free part of ``povmfit fit``, computed in a second process.
 
 The reconstructions (full diagonal POVM, pointwise and smoothed Wigner values, phase test)
-do not depend on the fit. :func:`start_model_free` launches them in a fresh Python process as
-soon as the command line is parsed, so they run on the second core while this process
-imports its libraries and ranks and fits the models; :meth:`ModelFreeJob.result` collects
-them. Then the fitted model's outcome probabilities go back to the helper, which
+do not depend on the fit. :func:`start_model_free` launches the costly one, the POVM, in a
+fresh Python process as soon as the command line is parsed, so it runs on the second core
+while this process imports its libraries and ranks and fits the models;
+:meth:`ModelFreeJob.result` computes the Wigner values here meanwhile and collects it. Then the fitted model's outcome probabilities go back to the helper, which
 reconstructs scans simulated from them for the cross-check (:meth:`ModelFreeJob.send_model`,
 :meth:`ModelFreeJob.under_model`) while this process prepares the rest. The helper reads the
 scan file itself and reports the file's SHA-256: results for a different file are not used.
@@ -32,14 +32,26 @@ CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the PO
 
 def model_free_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> dict:
     """{reconstruction, pointwise, smoothed, phase_test} of a scan (no model involved)."""
+    return {"reconstruction": povm_reconstruction(scan, seed, bootstrap), **wigner_reconstructions(scan, seed, bootstrap)}
+
+
+def povm_reconstruction(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP):
+    """The full diagonal POVM (cross-validated regularisation, bootstrap errors)."""
+    from .reconstruct import reconstruct_povm
+
+    return reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=bootstrap, seed=seed,
+                            quiet=True)
+
+
+def wigner_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> dict:
+    """{pointwise, smoothed, phase_test}: Wigner values point by point and smoothed, and the
+    phase-insensitivity test (each seeded on its own, independent of the POVM's draws)."""
     import numpy as np
 
     from .pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
-    from .reconstruct import reconstruct_povm
 
     coherent, thermal, counts = scan.coherent_photons, scan.thermal_photons, scan.counts
     with np.errstate(over="ignore", invalid="ignore"):  # scipy's trust-region internals (benign)
-        reconstruction = reconstruct_povm(coherent, thermal, counts, bootstrap=bootstrap, seed=seed, quiet=True)
         # the published box-constrained estimator (per outcome) keeps the pipeline fast
         pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method="box",
                                      bootstrap=bootstrap, seed=seed, quiet=True)
@@ -48,7 +60,7 @@ def model_free_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_
             # the smoothed curve keeps the saturation prior of the pointwise values it summarises
             smoothed = smoothed_wigner(pointwise, max_saturation=pointwise.saturation)
         phase_test = phase_insensitivity_test(coherent, thermal, counts, scan.phase_rad)
-    return {"reconstruction": reconstruction, "pointwise": pointwise, "smoothed": smoothed, "phase_test": phase_test}
+    return {"pointwise": pointwise, "smoothed": smoothed, "phase_test": phase_test}
 
 
 class ModelFreeJob:
@@ -61,13 +73,14 @@ class ModelFreeJob:
         self.bootstrap = bootstrap
 
     def result(self, scan) -> dict:
-        """The reconstructions of ``scan``: from the helper when it succeeded for this very
-        file, otherwise computed here."""
-        parts = self._collect(scan.sha256)
-        if parts is None:
+        """The reconstructions of ``scan``: the POVM from the helper when it succeeded for this
+        very file (otherwise computed here), the Wigner values computed here meanwhile."""
+        parts = wigner_reconstructions(scan, self.seed, self.bootstrap)
+        reconstruction = self._collect(scan.sha256)
+        if reconstruction is None:
             self.cancel()
-            return model_free_reconstructions(scan, self.seed, self.bootstrap)
-        return parts
+            reconstruction = povm_reconstruction(scan, self.seed, self.bootstrap)
+        return {"reconstruction": reconstruction, **parts}
 
     def _collect(self, sha256: str):
         if self._process is None:
@@ -76,7 +89,7 @@ class ModelFreeJob:
             message = _receive(self._process.stdout)
         except Exception:  # noqa: BLE001 - any failure of the helper means: compute here
             return None
-        return message["parts"] if message and message.get("sha256") == sha256 else None
+        return message["reconstruction"] if message and message.get("sha256") == sha256 else None
 
     def send_model(self, q) -> None:
         """Hand the fitted model's outcome probabilities q[p, k] to the helper, which then
@@ -191,7 +204,7 @@ def start_model_free(scan_path, seed: int, bootstrap: int = RECONSTRUCTION_BOOTS
 def _serve() -> int:
     """Helper process: messages (length-prefixed pickles) on stdin and stdout.
 
-    in: the request; out: the reconstructions; then, with a ranking request, programs are
+    in: the request; out: the POVM reconstruction; then, with a ranking request, programs are
     compiled; in: the fitted model's q (or the end of input); out: the reconstructions
     under the model.
     """
@@ -203,8 +216,8 @@ def _serve() -> int:
 
     enable_compilation_cache()
     scan = load_scan(request["scan"])
-    parts = model_free_reconstructions(scan, request["seed"], request["bootstrap"])
-    _send(output, {"sha256": scan.sha256, "parts": parts})
+    reconstruction = povm_reconstruction(scan, request["seed"], request["bootstrap"])
+    _send(output, {"sha256": scan.sha256, "reconstruction": reconstruction})
     if request.get("ranking"):
         try:
             _prepare_ranking_programs(scan, **request["ranking"])
@@ -212,7 +225,7 @@ def _serve() -> int:
             pass
     model = _receive(sys.stdin.buffer)
     if model is not None:
-        mean, spread = reconstructions_under_model(scan, model["q"], parts["reconstruction"], request["seed"])
+        mean, spread = reconstructions_under_model(scan, model["q"], reconstruction, request["seed"])
         _send(output, {"mean": mean, "spread": spread})
     output.close()
     return 0

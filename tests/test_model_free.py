@@ -29,8 +29,8 @@ def test_helper_process_matches_in_process_computation(scan):
     # Source: the in-process computation with the same seeds (common practice, no source).
     job = start_model_free(demo_scan_path(), seed=3, bootstrap=5)
     try:
-        from_helper = job._collect(scan.sha256)
-        assert from_helper is not None, "the helper process did not deliver"
+        from_helper = job.result(scan)
+        assert job._process is not None, "the helper process did not deliver"
         here = model_free_reconstructions(scan, seed=3, bootstrap=5)
         _assert_same(from_helper, here)
         # a model: the reconstruction's own prediction of the probe frequencies
