@@ -5,8 +5,8 @@ do not depend on the fit. :func:`start_model_free` launches the costly one, the 
 fresh Python process as soon as the command line is parsed, so it runs on the second core
 while this process imports its libraries and ranks and fits the models;
 :meth:`ModelFreeJob.result` computes the Wigner values here meanwhile and collects it. Then the fitted model's outcome probabilities go back to the helper, which
-reconstructs scans simulated from them for the cross-check (:meth:`ModelFreeJob.send_model`,
-:meth:`ModelFreeJob.under_model`) while this process prepares the rest. The helper reads the
+reconstructs scans simulated from them for the cross-check (:meth:`ModelFreeJob.under_model`)
+while this process prepares the rest. The helper reads the
 scan file itself and reports the file's SHA-256: results for a different file are not used.
 Whenever the helper fails (or cannot start), everything is computed here instead, with the
 same functions and seeds, so the outputs never depend on which process made them.
@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import os
 import pickle
+import select
 import struct
 import subprocess
 import sys
@@ -72,15 +73,32 @@ class ModelFreeJob:
         self.seed = seed
         self.bootstrap = bootstrap
 
-    def result(self, scan) -> dict:
+    def result(self, scan, q=None) -> dict:
         """The reconstructions of ``scan``: the POVM from the helper when it succeeded for this
-        very file (otherwise computed here), the Wigner values computed here meanwhile."""
-        parts = wigner_reconstructions(scan, self.seed, self.bootstrap)
+        very file (otherwise computed here), the Wigner values computed here. With the fitted
+        model's outcome probabilities ``q`` the helper gets them as soon as its POVM is read,
+        to reconstruct scans simulated from them (:meth:`under_model`) while the Wigner values
+        are computed here."""
+        parts = None
+        if not self._output_ready():  # use the wait
+            parts = wigner_reconstructions(scan, self.seed, self.bootstrap)
         reconstruction = self._collect(scan.sha256)
         if reconstruction is None:
             self.cancel()
             reconstruction = povm_reconstruction(scan, self.seed, self.bootstrap)
+        elif q is not None:
+            self._send_model(q)
+        if parts is None:
+            parts = wigner_reconstructions(scan, self.seed, self.bootstrap)
         return {"reconstruction": reconstruction, **parts}
+
+    def _output_ready(self) -> bool:
+        if self._process is None:
+            return True
+        try:
+            return bool(select.select([self._process.stdout], [], [], 0)[0])
+        except (OSError, ValueError):
+            return True
 
     def _collect(self, sha256: str):
         if self._process is None:
@@ -91,10 +109,9 @@ class ModelFreeJob:
             return None
         return message["reconstruction"] if message and message.get("sha256") == sha256 else None
 
-    def send_model(self, q) -> None:
-        """Hand the fitted model's outcome probabilities q[p, k] to the helper, which then
-        reconstructs scans simulated from them (see :func:`reconstructions_under_model`).
-        Call after :meth:`result`."""
+    def _send_model(self, q) -> None:
+        # only after the helper's first message is read: neither side can then block the
+        # other on a full pipe
         if self._process is None:
             return
         try:
@@ -104,8 +121,8 @@ class ModelFreeJob:
             self.cancel()
 
     def under_model(self, scan, q, reconstruction):
-        """(mean, spread) of :func:`reconstructions_under_model`: from the helper when
-        :meth:`send_model` reached it (call :meth:`result` first), otherwise computed here."""
+        """(mean, spread) of :func:`reconstructions_under_model`: from the helper when it got
+        ``q`` through :meth:`result`, otherwise computed here."""
         if self._process is not None and self._model_sent:
             try:
                 message = _receive(self._process.stdout)

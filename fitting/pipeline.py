@@ -75,10 +75,8 @@ def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | 
                 _parse_model_option(spec, "--candidates")
         # the model-free reconstructions run in their own process meanwhile
         model, comparison, result = _rank_and_fit(scan, args)
-        parts = model_free.result(scan)
-        # only now (the helper's first message is read, so neither side can block the other on
-        # a full pipe) the helper gets the fit, to simulate scans from it meanwhile
-        model_free.send_model(result.predicted)
+        # the helper gets the fit, to simulate scans from it while the rest is prepared here
+        parts = model_free.result(scan, result.predicted)
         cross = _cross_check_section(scan, result, parts, model_free)
     finally:
         model_free.cancel()

@@ -29,13 +29,11 @@ def test_helper_process_matches_in_process_computation(scan):
     # Source: the in-process computation with the same seeds (common practice, no source).
     job = start_model_free(demo_scan_path(), seed=3, bootstrap=5)
     try:
-        from_helper = job.result(scan)
+        q = scan.counts / scan.shots[:, None]  # a model: the observed frequencies themselves
+        from_helper = job.result(scan, q)
         assert job._process is not None, "the helper process did not deliver"
         here = model_free_reconstructions(scan, seed=3, bootstrap=5)
         _assert_same(from_helper, here)
-        # a model: the reconstruction's own prediction of the probe frequencies
-        q = scan.counts / scan.shots[:, None]
-        job.send_model(q)
         helper_mean, helper_spread = job.under_model(scan, q, here["reconstruction"])
         assert job._process is not None, "the helper did not answer; the values were computed here"
     finally:
