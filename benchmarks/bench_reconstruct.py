@@ -109,7 +109,7 @@ def _demo_rows():
     reconstructed, total = min(once() for _ in range(2))
     return [
         {"name": "reconstruct demo scan: CV + 50 bootstrap + 50 simulated scans (s)", "value": total, "unit": "s",
-         "baseline": None, "ratio": None, "target": "< 1 s (its budget in the fit command)", "passed": total < 1.0},
+         "baseline": None, "ratio": None, "target": None, "passed": None},
         {"name": "reconstruct demo scan: of which reconstruct_povm (CV + bootstrap)", "value": reconstructed, "unit": "s",
          "baseline": None, "ratio": None, "target": None, "passed": None},
         {"name": "reconstruct demo scan: first run incl. compilation (s)", "value": first[1], "unit": "s",
