@@ -60,8 +60,11 @@ def entry() -> None:
     and JAX runtime clean-up, about 0.5 s) is what makes the leaving immediate.
     """
     code = main()
-    sys.stdout.flush()
-    sys.stderr.flush()
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.flush()
+        except OSError:  # e.g. a reader that closed the pipe early
+            pass
     os._exit(code)
 
 
