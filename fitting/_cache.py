@@ -8,14 +8,16 @@ Two layers, both switched on by :func:`enable_compilation_cache` (the command li
   hot functions, so a warm run does not trace the Python model code again either (0.2-0.5 s
   per detector family otherwise).
 
-A stored program is keyed by its label, the shapes and dtypes of its arguments, the versions of
-jax and jaxlib and a hash of povmfit's own source files: edited code never meets a stale
-program. Any failure to read or write the store falls back to plain tracing.
+A stored program is keyed by its label and the shapes and dtypes of its arguments, inside a
+folder named by a hash of povmfit's own source files and the versions of jax and jaxlib:
+edited code never meets a stale program, and folders unused for 30 days are removed. Any
+failure to read or write the store falls back to plain tracing.
 """
 from __future__ import annotations
 
 import hashlib
 import os
+import shutil
 import sys
 import tempfile
 import threading
@@ -100,10 +102,10 @@ def stored_program(jitted, label: str, args):
     needs the same program meanwhile waits for it instead of compiling it twice (the command
     line's helper process compiles programs the main process will need later).
     """
-    folder = _STORE["folder"]
-    if folder is None:
+    if _STORE["folder"] is None:
         return jitted
     try:
+        folder = _program_folder()
         key = _program_key(label, args)
         path, claim = folder / f"{key}.hlo", folder / f"{key}.claim"
         if not path.exists():
@@ -116,7 +118,30 @@ def stored_program(jitted, label: str, args):
 
 
 def _program_key(label: str, args) -> str:
-    return hashlib.sha256(repr((label, _signature(args), _source_fingerprint())).encode()).hexdigest()[:40]
+    return hashlib.sha256(repr((label, _signature(args))).encode()).hexdigest()[:40]
+
+
+_STALE_AFTER_S = 30 * 86400
+
+
+def _program_folder() -> Path:
+    return _version_folder(_STORE["folder"])
+
+
+@lru_cache(maxsize=4)
+def _version_folder(root: Path) -> Path:
+    """The store's folder for this source and JAX version; folders of other versions unused
+    for 30 days are removed."""
+    folder = root / _source_fingerprint()[:24]
+    folder.mkdir(exist_ok=True)
+    os.utime(folder)  # marks this version as in use
+    for other in root.iterdir():
+        try:
+            if other.is_dir() and other != folder and time.time() - other.stat().st_mtime > _STALE_AFTER_S:
+                shutil.rmtree(other, ignore_errors=True)
+        except OSError:
+            pass
+    return folder
 
 
 def _deserialize(data: bytes):
@@ -198,8 +223,7 @@ class StoredPrograms:
 
     def is_stored(self, *args) -> bool:
         """Whether the program for arguments shaped like ``args`` is in the store already."""
-        folder = _STORE["folder"]
-        return folder is not None and (folder / f"{_program_key(self._label, args)}.hlo").exists()
+        return _STORE["folder"] is not None and (_program_folder() / f"{_program_key(self._label, args)}.hlo").exists()
 
     def __call__(self, *args):
         signature = _signature(args)

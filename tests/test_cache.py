@@ -25,7 +25,7 @@ def test_stored_program_is_saved_and_reloaded_with_identical_results(store):
     jitted, args = _probabilities_and_jacobian()
     reference = jitted(*args)  # source: the plain jitted function (common practice, no source)
     first = _cache.stored_program(jitted, "probe", args)
-    assert len(list(store.glob("*.hlo"))) == 1
+    assert len(list(store.glob("*/*.hlo"))) == 1
     second = _cache.stored_program(jitted, "probe", args)  # now read back from the file
     for program in (first, second):
         for got, want in zip(program(*args), reference):
@@ -40,7 +40,7 @@ def test_programs_are_keyed_by_label_and_argument_shapes(store):
     wrapper = _cache.StoredPrograms(jitted, "one")
     q, _ = wrapper(*longer)
     assert q.shape == (4, 5)
-    assert len(list(store.glob("*.hlo"))) == 3
+    assert len(list(store.glob("*/*.hlo"))) == 3
 
 
 def test_store_off_means_plain_tracing(monkeypatch):
@@ -51,7 +51,8 @@ def test_store_off_means_plain_tracing(monkeypatch):
 
 def _claim_and_program_paths(store, jitted, args, label):
     key = _cache._program_key(label, args)
-    return store / f"{key}.claim", store / f"{key}.hlo"
+    folder = _cache._program_folder()
+    return folder / f"{key}.claim", folder / f"{key}.hlo"
 
 
 def test_claim_of_a_stopped_process_is_not_waited_for(store, monkeypatch):
@@ -78,3 +79,19 @@ def test_live_claim_is_waited_for_and_its_program_used(store, monkeypatch):
     monkeypatch.setattr(_cache, "_export_compile_and_store", lambda *a: pytest.fail("compiled it twice"))
     program = _cache.stored_program(jitted, "claimed", args)
     np.testing.assert_array_equal(np.asarray(program(*args)[0]), np.asarray(jitted(*args)[0]))
+
+
+def test_programs_of_other_versions_unused_for_30_days_are_removed(store):
+    import os
+    import time
+
+    old, recent = store / ("0" * 24), store / ("1" * 24)
+    for folder in (old, recent):
+        folder.mkdir()
+        (folder / "x.hlo").write_bytes(b"")
+    month_ago = time.time() - 31 * 86400
+    os.utime(old, (month_ago, month_ago))
+    jitted, args = _probabilities_and_jacobian()
+    _cache.stored_program(jitted, "sweep", args)
+    assert not old.exists() and recent.exists()
+    assert len(list(store.glob("*/*.hlo"))) == 2  # the recent one and the new program
