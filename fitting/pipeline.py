@@ -26,7 +26,6 @@ from .scan import load_scan
 __all__ = ["run_fit_pipeline", "model_povm_with_errors"]
 
 
-
 def _parse_model_option(text: str, option: str = "--model"):
     try:
         return parse_model_spec(text)
