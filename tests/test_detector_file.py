@@ -101,7 +101,8 @@ def test_non_json_content_is_refused_without_executing_it(tmp_path):
 
 
 def test_ensemble_reproduces_mean_and_covariance_inside_the_bounds():
-    # interior point, bounds far away: the draws are Normal(values, covariance). With n = 20000
+    # Source: sampling theory of the normal distribution (standard result, from memory).
+    # Interior point, bounds far away: the draws are Normal(values, covariance). With n = 20000
     # the mean is off by about sd/sqrt(n) (checked at 5 sd/sqrt(n)) and each variance by about
     # sqrt(2/n) = 1 % relative (checked at 6 %) -- sampling theory of the normal distribution.
     covariance = np.array([[4e-4, 1e-5, 0.0], [1e-5, 1e-6, 0.0], [0.0, 0.0, 1e-4]])
@@ -115,8 +116,9 @@ def test_ensemble_reproduces_mean_and_covariance_inside_the_bounds():
 
 
 def test_ensemble_at_a_bound_is_the_truncated_normal():
-    # dark probability fitted at its lower bound 0 with sd s: rejection gives the half-normal,
-    # mean s*sqrt(2/pi) (standard result); 20000 draws: standard error 0.6 s/sqrt(n), checked at 5x
+    # Source: the half-normal distribution's mean s*sqrt(2/pi) and sd s*sqrt(1 - 2/pi) ~ 0.6 s
+    # (standard results, from memory). Dark probability fitted at its lower bound 0 with sd s:
+    # rejection gives the half-normal; 20000 draws: standard error 0.6 s/sqrt(n), checked at 5x
     s = 1e-3
     record = _record(values={"efficiency": 0.6, "dark_probability": 0.0, "crosstalk_probability": 0.1},
                      covariance=np.diag([1e-4, s**2, 1e-4]))
@@ -126,7 +128,8 @@ def test_ensemble_at_a_bound_is_the_truncated_normal():
 
 
 def test_ensemble_falls_back_to_clipping_with_a_warning():
-    # six parameters on a bound: acceptance 2^-6 < 1/50, so rejection cannot fill 2000 draws
+    # Source: common practice, no source (plumbing of the fallback). Six parameters on a bound:
+    # acceptance 2^-6 < 1/50, so rejection cannot fill 2000 draws
     spec = "array:4+dark+crosstalk+unequal_split"
     values = {"efficiency": 1.0, "dark_probability": 0.0, "crosstalk_probability": 0.0,
               "split_log_ratio_1": 10.0, "split_log_ratio_2": -10.0, "split_log_ratio_3": 10.0}
