@@ -18,7 +18,6 @@ from __future__ import annotations
 import hashlib
 import os
 import shutil
-import sys
 import tempfile
 import threading
 import time
@@ -47,8 +46,7 @@ _JAX_SETTINGS = {  # JAX reads these options from the environment when it is fir
 def enable_compilation_cache() -> None:
     """Keep JAX's compiled code and povmfit's traced programs in the user cache folder.
 
-    Does not import JAX (the command line calls it first thing): before JAX is imported the
-    options go to the environment, afterwards to ``jax.config``.
+    Does not import JAX (the command line calls it first thing).
     """
     base = _user_cache_folder()
     try:
@@ -56,12 +54,8 @@ def enable_compilation_cache() -> None:
         (base / "programs").mkdir(parents=True, exist_ok=True)
     except OSError:
         return
-    settings = dict(_JAX_SETTINGS, jax_compilation_cache_dir=str(base / "jax"))
-    if "jax" in sys.modules:
-        for name, value in settings.items():
-            sys.modules["jax"].config.update(name, value)
-    else:
-        os.environ.update({name.upper(): str(value) for name, value in settings.items()})
+    for name, value in dict(_JAX_SETTINGS, jax_compilation_cache_dir=str(base / "jax")).items():
+        povmfit._set_jax_option(name, value)
     _STORE["folder"] = base / "programs"
 
 

@@ -19,7 +19,6 @@ import numpy as np
 
 import povmfit
 
-
 __all__ = ["figures", "datasheet_document", "worst_residuals", "model_block", "SCHEMA"]
 
 SCHEMA = "povmfit.datasheet/1"

@@ -110,8 +110,9 @@ class _Compiled:
             jac = jax.jacfwd(probabilities)(x, coherent, thermal)
             return probabilities(x, coherent, thermal), jac
 
-        # the fitter forms residuals, their Jacobian and the Fisher information in numpy from
-        # this one function; the JAX residuals serve the vectorised bootstrap
+        # fits with a calibration prior form residuals, their Jacobian and the Fisher
+        # information in numpy from the first function; the JAX residuals serve the
+        # vectorised bootstrap
         label = f"probabilities_and_jacobian|{model.spec}|{n_photons}|{calibrated}"
         self.probabilities_and_jacobian = StoredPrograms(jax.jit(probabilities_and_jacobian), label)
         self.probabilities = jax.jit(probabilities)

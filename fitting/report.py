@@ -32,7 +32,7 @@ from pathlib import Path
 
 import numpy as np
 
-from povmfit.models import banded_probe_distributions, choose_cutoff, povm_wigner
+from povmfit.models import choose_cutoff, povm_wigner, probe_distributions_numpy
 
 from . import plots
 from ._io import atomic_write_text
@@ -100,7 +100,7 @@ def model_curves(scan, result, theta=None) -> list[dict]:
     thermal = np.repeat(levels[populated], grid.size) * scale
     n_photons = choose_cutoff(coherent, thermal, 1e-10)
     if theta is not None and np.shape(theta)[1] >= n_photons:
-        distributions = banded_probe_distributions(coherent, thermal, n_photons).dense()
+        distributions = probe_distributions_numpy(coherent, thermal, n_photons)
         q = distributions @ np.asarray(theta, dtype=float)[:, :n_photons].T
     else:
         q = np.asarray(compiled(result.model, n_photons).probabilities(result.parameter_vector, coherent, thermal))
