@@ -1,52 +1,100 @@
-"""The whole ``povmfit fit`` command on the bundled example scan, as a user runs it.
+"""The whole ``povmfit fit`` command on the bundled example scan, new code against old.
 
-Each run is a fresh process with its own empty user cache folder (``XDG_CACHE_HOME``):
+Old = commit ``c65d21c`` (before the restructuring), new = the installed package (or the commit
+in ``$POVMFIT_BENCH_NEW``); see ``_previous.py`` for how each is run. The command is the one the
+demo runs: ``python -m povmfit fit demo_scan.csv --out DIR --quiet --calibration-uncertainty
+0.03 --gate-duration 1e-7`` (model auto), each version on its own copy of the scan.
 
-- cold: nothing compiled yet (JAX's persistent cache and the traced-program store empty);
-- warm: the same command again with the cache the cold run left.
+Each run is a fresh process; wall time is taken from the start to the exit of the command:
 
-Baseline, measured in the same run: a fresh process that only imports jax and numpy — the
-floor any JAX command line pays before doing work. Targets (absolute wall time): cold < 10 s,
-warm < 3 s. The figures are the median of ``REPEATS`` cold/warm pairs.
+- cold: first run with a fresh empty user cache folder (``XDG_CACHE_HOME``);
+- warm: the same command again on the cache the cold run left.
+
+Figures are the median of ``REPEATS`` (cold, warm) pairs per version, the versions interleaved
+(alternating which goes first) so machine noise hits both. Target: new/old <= ``TARGET_RATIO``
+for both cold and warm. Also reported, for information: a fresh process that only imports jax
+and numpy (the floor any JAX command line pays), and the non-blank production lines of code
+(``*.py`` under ``src/``, ``models/``, ``fitting/``) of both versions.
 """
 from __future__ import annotations
 
-import os
 import statistics
-import subprocess
 import sys
-import tempfile
-import time
 from pathlib import Path
 
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _previous import environment, fresh_folder, production_lines, run_timed, versions  # noqa: E402
+
 REPEATS = 5
-SCAN = Path(__file__).resolve().parents[1] / "fitting" / "data" / "demo_scan.csv"
+TARGET_RATIO = 1.15
+FIT_OPTIONS = ("--quiet", "--calibration-uncertainty", "0.03", "--gate-duration", "1e-7")
 
 
-def _wall(command, cache: str, cwd: str) -> float:
-    env = dict(os.environ, XDG_CACHE_HOME=cache)
-    started = time.perf_counter()
-    subprocess.run(command, env=env, cwd=cwd, check=True, stdout=subprocess.DEVNULL)
-    return time.perf_counter() - started
+def _cold_warm(version, scratch):
+    """One (cold, warm) pair of ``version`` on a fresh cache folder; a failed run gives None."""
+    cwd = fresh_folder(scratch, "work")
+    cache = cwd / "cache"
+    times = []
+    for out in ("out-cold", "out-warm"):
+        result = run_timed(version.command("fit", str(version.demo_scan()), "--out", out, *FIT_OPTIONS),
+                           version.environment(cache), cwd)
+        if result.returncode:
+            return None, result.error
+        times.append(result.seconds)
+    return tuple(times), ""
+
+
+def _ratio_row(name, new, old):
+    ratio = None if new is None or old is None else new / old
+    return {"name": name, "value": new, "unit": "s", "baseline": old, "ratio": ratio,
+            "target": f"ratio <= {TARGET_RATIO:g}", "passed": ratio is not None and ratio <= TARGET_RATIO}
+
+
+def _info_row(name, value, unit, baseline=None):
+    ratio = None if baseline is None else value / baseline
+    return {"name": name, "value": value, "unit": unit, "baseline": baseline, "ratio": ratio,
+            "target": None, "passed": None}
 
 
 def run():
-    fit = [sys.executable, "-m", "povmfit", "fit", str(SCAN), "--out", "out", "--quiet"]
-    floor = [sys.executable, "-c", "import jax, numpy"]
-    cold, warm, base = [], [], []
-    for _ in range(REPEATS):
-        with tempfile.TemporaryDirectory() as folder:
-            cache = str(Path(folder) / "cache")
-            base.append(_wall(floor, cache, folder))
-            cold.append(_wall(fit, cache, folder))
-            warm.append(_wall(fit, cache, folder))
-    floor_s = statistics.median(base)
+    with versions() as (old, new, scratch):
+        roles = {"old": old, "new": new}
+        pairs = {"old": [], "new": []}  # (cold s, warm s) per repeat
+        errors = {}  # role -> last stderr line of its failed run
+        floor = []
+        for repeat in range(REPEATS):
+            cwd = fresh_folder(scratch, "floor")
+            floor.append(run_timed([sys.executable, "-c", "import jax, numpy"], environment(cwd / "cache"), cwd).seconds)
+            for role in ("old", "new") if repeat % 2 == 0 else ("new", "old"):
+                if role in errors:
+                    continue  # a broken version is not run again
+                pair, error = _cold_warm(roles[role], scratch)
+                if pair is None:
+                    errors[role] = error
+                else:
+                    pairs[role].append(pair)
+        lines = {role: production_lines(version.tree) for role, version in roles.items()}
+        same_scan = old.demo_scan().read_bytes() == new.demo_scan().read_bytes()
+
+    def median(role, index):
+        return None if role in errors else statistics.median(pair[index] for pair in pairs[role])
+
+    versus = f"{new.label} vs {old.label}"
     rows = []
-    for name, times, target in (("fit command, cold cache", cold, 10.0), ("fit command, warm cache", warm, 3.0)):
-        value = statistics.median(times)
-        rows.append({
-            "name": f"{name} (ratio = time / import-jax floor)",
-            "value": value, "unit": "s", "baseline": floor_s, "ratio": value / floor_s,
-            "target": f"< {target:g} s", "passed": value < target,
-        })
+    for index, cache in ((0, "cold"), (1, "warm")):
+        row = _ratio_row(f"fit command, {cache} cache: {versus}", median("new", index), median("old", index))
+        row["notes"] = {f"{role} runs (s)": [pair[index] for pair in pairs[role]] for role in roles}
+        rows.append(row)
+    for role, error in errors.items():
+        rows.append({"name": f"FAILED {roles[role].label}: {error[:100]}", "value": None, "unit": None,
+                     "baseline": None, "ratio": None, "target": "runs", "passed": False, "notes": error})
+    if not same_scan:
+        rows.append({"name": "demo_scan.csv differs between the versions", "value": None, "unit": None,
+                     "baseline": None, "ratio": None, "target": "identical", "passed": False})
+    rows.append(_info_row("process importing jax, numpy only (information)", statistics.median(floor), "s"))
+    rows.append(_info_row(f"production lines (non-blank *.py in src/ models/ fitting/): {versus}",
+                          lines["new"], "lines", baseline=lines["old"]))
+    rows.append(_info_row(f"production lines: difference {new.label} - {old.label}",
+                          lines["new"] - lines["old"], "lines"))
     return rows

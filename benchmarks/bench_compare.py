@@ -10,9 +10,9 @@ import time
 
 import numpy as np
 
-from povmfit.fitting.compare import candidate_models, compare_models
-from povmfit.fitting.fit import fit_scan
-from povmfit.fitting.scan import scan_from_arrays
+from povmfit.fitting.inference.compare import candidate_models, compare_models
+from povmfit.fitting.inference.fit import fit_scan
+from povmfit.fitting.data.scan import scan_from_arrays
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
 
 TRUTH = {"efficiency": 0.6, "dark_probability": 2e-3, "crosstalk_probability": 0.04}

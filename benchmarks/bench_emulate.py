@@ -12,8 +12,8 @@ import time
 
 import numpy as np
 
-from povmfit.fitting.detector_file import DetectorRecord
-from povmfit.fitting.emulator import Emulator
+from povmfit.fitting.data.detector_file import DetectorRecord
+from povmfit.fitting.emulation.emulator import Emulator
 from povmfit.models import parse_model_spec
 
 

@@ -26,8 +26,8 @@ from scipy import optimize, special, stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent / "tests"))
 
-from povmfit.fitting.bootstrap import parametric_bootstrap  # noqa: E402
-from povmfit.fitting.fit import fit_scan  # noqa: E402
+from povmfit.fitting.inference.bootstrap import parametric_bootstrap  # noqa: E402
+from povmfit.fitting.inference.fit import fit_scan  # noqa: E402
 
 from simulated import Experiment, simulated_counts  # noqa: E402
 

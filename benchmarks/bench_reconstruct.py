@@ -46,7 +46,7 @@ def _cvxpy_solve(frequencies, distributions, g):
 
 
 def _small_rows():
-    from povmfit.fitting.reconstruct import build_layout, objective_value, solve_povm, weighted_operator
+    from povmfit.fitting.tomography.reconstruct import build_layout, objective_value, solve_povm, weighted_operator
     from povmfit.models import probe_distributions
 
     coherent, thermal, frequencies = _small_problem()
@@ -90,10 +90,10 @@ def _demo_rows():
     cross-validated reconstruction with 50 bootstrap replicates, then 50 simulated scans
     reconstructed at the chosen g (as the helper process of the fit command does). Timed after
     a first run (compiled code in memory)."""
-    from povmfit.fitting.cmd_demo import demo_scan_path
-    from povmfit.fitting.model_free import povm_reconstruction, reconstructions_under_model
-    from povmfit.fitting.reconstruct import build_layout, predicted_frequencies
-    from povmfit.fitting.scan import load_scan
+    from povmfit.fitting.cli.demo import demo_scan_path
+    from povmfit.fitting.tomography.model_free import povm_reconstruction, reconstructions_under_model
+    from povmfit.fitting.tomography.reconstruct import build_layout, predicted_frequencies
+    from povmfit.fitting.data.scan import load_scan
 
     scan = load_scan(demo_scan_path())
 
@@ -124,7 +124,7 @@ def _large_problem_in_this_process() -> dict:
     """Runs in a subprocess: 20 outcomes x 20,000 photon numbers, 2,000 coherent probes."""
     import resource
 
-    from povmfit.fitting.reconstruct import build_layout, coarse_start, predicted_frequencies, solve_povm, weighted_operator
+    from povmfit.fitting.tomography.reconstruct import build_layout, coarse_start, predicted_frequencies, solve_povm, weighted_operator
 
     n_photons, n_outcomes, n_probes = 20_000, 20, 2_000
     n = np.arange(n_photons)
@@ -145,7 +145,7 @@ def _large_problem_in_this_process() -> dict:
     coarse = time.perf_counter() - started
     theta, iterations, converged = solve_povm(op, frequencies, g, start, rtol=1e-10, max_iter=MAX_FINE_ITERATIONS)
     solved = time.perf_counter() - started
-    from povmfit.fitting.reconstruct import objective_value
+    from povmfit.fitting.tomography.reconstruct import objective_value
 
     weights = np.ones(n_probes)
     more, _, _ = solve_povm(op, frequencies, g, theta, rtol=0.0, max_iter=100)

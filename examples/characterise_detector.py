@@ -15,9 +15,9 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.datasheet import figures
-from povmfit.fitting.fit import fit_scan
-from povmfit.fitting.scan import scan_from_arrays
+from povmfit.fitting.outputs.datasheet import figures
+from povmfit.fitting.inference.fit import fit_scan
+from povmfit.fitting.data.scan import scan_from_arrays
 from povmfit.models import parse_model_spec, probe_distributions
 
 # The invented "true" device that the simulation stands in for.

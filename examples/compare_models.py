@@ -15,8 +15,8 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.compare import compare_models
-from povmfit.fitting.scan import scan_from_arrays
+from povmfit.fitting.inference.compare import compare_models
+from povmfit.fitting.data.scan import scan_from_arrays
 from povmfit.models import parse_model_spec, probe_distributions
 
 DEVICE = "array:4+dark+crosstalk"  # what the simulated device really is

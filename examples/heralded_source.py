@@ -29,10 +29,10 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.detector_file import DetectorRecord
-from povmfit.fitting.emulator import Emulator
-from povmfit.fitting.fit import fit_scan
-from povmfit.fitting.scan import scan_from_arrays
+from povmfit.fitting.data.detector_file import DetectorRecord
+from povmfit.fitting.emulation.emulator import Emulator
+from povmfit.fitting.inference.fit import fit_scan
+from povmfit.fitting.data.scan import scan_from_arrays
 from povmfit.models import parse_model_spec, probe_distributions, thermal_distribution
 
 HERALD = "threshold+dark"

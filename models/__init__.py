@@ -17,6 +17,7 @@ from ._emulate import (
     uniform_subset_patterns,
 )
 from ._families import FAMILIES, FEATURES, DetectorModel, parse_model_spec
+from ._features import FEATURE_TABLE, PARAMETERS, dark_parameter_names, null_value, ranked_features
 from ._povm import POVM
 from ._probes import (
     choose_cutoff,
@@ -43,7 +44,8 @@ from ._stages import (
 from ._wigner import fock_wigner_table, fock_wigner_table_numpy, povm_wigner, saturating_wigner
 
 __all__ = [
-    "FAMILIES", "FEATURES", "DetectorModel", "parse_model_spec", "POVM",
+    "FAMILIES", "FEATURES", "FEATURE_TABLE", "PARAMETERS", "dark_parameter_names", "null_value", "ranked_features",
+    "DetectorModel", "parse_model_spec", "POVM",
     "choose_cutoff", "coherent_distribution", "displaced_thermal_distribution",
     "fock_distribution", "probe_distributions", "probe_distributions_numpy", "squeezed_vacuum_distribution", "tail_mass",
     "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",

@@ -28,28 +28,11 @@ import jax
 import jax.numpy as jnp
 
 from . import _stages as st
+from ._features import FAMILIES, FEATURE_TABLE, FEATURES, MAX_SPLIT_PIXELS, parameter
 
 __all__ = ["DetectorModel", "parse_model_spec", "FAMILIES", "FEATURES"]
 
-FAMILIES = ("threshold", "pnr", "array")
-FEATURES = ("dark", "crosstalk", "readout", "unequal_split", "saturation")
-_ALLOWED = {
-    "threshold": {"dark"},
-    "pnr": {"dark", "crosstalk", "readout"},
-    "array": {"dark", "crosstalk", "readout", "unequal_split", "saturation"},
-}
-_MAX_SPLIT_PIXELS = 16
 _READOUT_MARGIN = 16  # extra internal counts kept above the top outcome (8 sigma at width 2)
-
-# name: (lower bound, upper bound, starting value)
-_PARAMETER_RANGES = {
-    "efficiency": (1e-9, 1.0, 0.5),
-    "dark_probability": (0.0, 0.999, 1e-3),
-    "dark_mean": (0.0, 20.0, 1e-3),
-    "crosstalk_probability": (0.0, 0.999, 0.02),
-    "readout_width": (1e-3, 2.0, 0.2),
-    "split_log_ratio": (-10.0, 10.0, 0.0),
-}
 
 
 @dataclass(frozen=True)
@@ -76,11 +59,11 @@ class DetectorModel:
             raise ValueError("a threshold detector has no size")
         if self.size < 1:
             raise ValueError(f"{self.family} size must be >= 1, got {self.size}")
-        unknown = set(self.features) - _ALLOWED[self.family]
+        unknown = {f for f in self.features if self.family not in FEATURE_TABLE[f].parameters}
         if unknown:
             raise ValueError(f"feature(s) {', '.join(sorted(unknown))} not available for {self.family}")
-        if "unequal_split" in self.features and not 2 <= self.size <= _MAX_SPLIT_PIXELS:
-            raise ValueError(f"unequal_split needs 2..{_MAX_SPLIT_PIXELS} pixels, got {self.size}")
+        if "unequal_split" in self.features and not 2 <= self.size <= MAX_SPLIT_PIXELS:
+            raise ValueError(f"unequal_split needs 2..{MAX_SPLIT_PIXELS} pixels, got {self.size}")
         if "crosstalk" in self.features and self.family == "array" and self.size < 2:
             raise ValueError("pixel crosstalk needs at least 2 pixels")
         if self.saturation is not None:
@@ -125,14 +108,9 @@ class DetectorModel:
     # ----- parameters ------------------------------------------------------------
     def _parameter_names(self) -> tuple[str, ...]:
         names = ["efficiency"]
-        if "dark" in self.features:
-            names.append("dark_mean" if self.family == "pnr" else "dark_probability")
-        if "crosstalk" in self.features:
-            names.append("crosstalk_probability")
-        if "readout" in self.features:
-            names.append("readout_width")
-        if "unequal_split" in self.features:
-            names += [f"split_log_ratio_{i}" for i in range(1, self.size)]
+        for feature in self.features:
+            for name in FEATURE_TABLE[feature].parameters[self.family]:
+                names += [f"{name}_{i}" for i in range(1, self.size)] if name == "split_log_ratio" else [name]
         return tuple(names)
 
     @property
@@ -142,16 +120,10 @@ class DetectorModel:
 
     def bounds(self) -> dict[str, tuple[float, float]]:
         """Allowed range of each parameter (inclusive, as used by the fitters)."""
-        out = {}
-        for name in self._names:
-            lo, hi, _ = _PARAMETER_RANGES[_base_name(name)]
-            if name == "crosstalk_probability" and self.family == "pnr":
-                hi = 0.6  # Borel branching mean L = -log(1-p) must stay below 1
-            out[name] = (lo, hi)
-        return out
+        return {name: (parameter(name, self.family).lower, parameter(name, self.family).upper) for name in self._names}
 
     def starting_values(self) -> dict[str, float]:
-        return {name: _PARAMETER_RANGES[_base_name(name)][2] for name in self._names}
+        return {name: parameter(name, self.family).start for name in self._names}
 
     def unpack(self, params) -> dict:
         """Parameter vector -> {name: value} (JAX-traceable)."""
@@ -182,21 +154,24 @@ class DetectorModel:
             return self._pnr_chain(p, matrix, n_photons)
         return self._click_chain(p, params, matrix, n_photons)
 
+    def _stage(self, feature: str):
+        return FEATURE_TABLE[feature].stages[self.family]
+
     def _click_chain(self, p, params, matrix, n_photons):
         n = self.size
         if "unequal_split" in self.features:
-            pixel = st.split_pixel_matrix(self.split_ratios(params), n_photons)
+            pixel = self._stage("unequal_split")(self.split_ratios(params), n_photons)
         else:
             pixel = st.uniform_pixel_matrix(n, n_photons)
         matrix = pixel @ matrix
         if "dark" in self.features:
-            matrix = st.click_dark_matrix(p["dark_probability"], n) @ matrix
+            matrix = self._stage("dark")(p["dark_probability"], n) @ matrix
         if "crosstalk" in self.features:
-            matrix = st.pixel_crosstalk_matrix(p["crosstalk_probability"], n) @ matrix
+            matrix = self._stage("crosstalk")(p["crosstalk_probability"], n) @ matrix
         if "readout" in self.features:
-            return st.readout_matrix(p["readout_width"], n + 1, self.n_outcomes) @ matrix
+            return self._stage("readout")(p["readout_width"], n + 1, self.n_outcomes) @ matrix
         if self.saturation is not None:
-            return st.saturation_matrix(n + 1, self.saturation) @ matrix
+            return self._stage("saturation")(n + 1, self.saturation) @ matrix
         return matrix
 
     def _pnr_chain(self, p, matrix, n_photons):
@@ -204,23 +179,19 @@ class DetectorModel:
         adds_counts = "dark" in self.features or "crosstalk" in self.features
         inner = max(n_photons, top + 1) + (_READOUT_MARGIN if adds_counts or "readout" in self.features else 0)
         if "dark" in self.features:
-            matrix = st.poisson_dark_matrix(p["dark_mean"], n_photons, inner) @ matrix
+            matrix = self._stage("dark")(p["dark_mean"], n_photons, inner) @ matrix
         else:
             matrix = jnp.zeros((inner, n_photons)).at[:n_photons].set(matrix)
         if "crosstalk" in self.features:
-            matrix = st.borel_crosstalk_matrix(p["crosstalk_probability"], inner, inner) @ matrix
+            matrix = self._stage("crosstalk")(p["crosstalk_probability"], inner, inner) @ matrix
         if "readout" in self.features:
-            return st.readout_matrix(p["readout_width"], inner, top + 1) @ matrix
+            return self._stage("readout")(p["readout_width"], inner, top + 1) @ matrix
         return st.saturation_matrix(inner, top) @ matrix
 
     # ----- figures -----------------------------------------------------------------
     def vacuum_click_probability(self, params):
         """Probability of any non-zero outcome with no light: 1 - theta[0, 0]."""
         return 1.0 - self.povm(params, 2)[0, 0]
-
-
-def _base_name(name: str) -> str:
-    return "split_log_ratio" if name.startswith("split_log_ratio") else name
 
 
 _SPEC_HEAD = re.compile(r"^(threshold|pnr|array)(?::(\d+))?$")

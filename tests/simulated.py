@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from povmfit.fitting.scan import scan_from_arrays
+from povmfit.fitting.data.scan import scan_from_arrays
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
 
 

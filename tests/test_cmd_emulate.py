@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from povmfit.fitting.cli import build_parser, main
-from povmfit.fitting.cmd_simulate import parse_probe_grid
-from povmfit.fitting.detector_file import DetectorRecord, save_detector
-from povmfit.fitting.emulator import Emulator
-from povmfit.fitting.scan import load_scan
+from povmfit.fitting.cli.main import build_parser, main
+from povmfit.fitting.cli.simulate import parse_probe_grid
+from povmfit.fitting.data.detector_file import DetectorRecord, save_detector
+from povmfit.fitting.emulation.emulator import Emulator
+from povmfit.fitting.data.scan import load_scan
 from povmfit.models import parse_model_spec
 
 

@@ -4,9 +4,9 @@ import json
 import numpy as np
 import pytest
 
-from povmfit.fitting.cli import main
-from povmfit.fitting.cmd_demo import demo_scan_path, generate_demo_scan
-from povmfit.fitting.scan import load_scan, write_scan
+from povmfit.fitting.cli.main import main
+from povmfit.fitting.cli.demo import demo_scan_path, generate_demo_scan
+from povmfit.fitting.data.scan import load_scan, write_scan
 
 from simulated import Experiment
 

@@ -6,7 +6,7 @@ import json
 
 import numpy as np
 
-from povmfit.fitting.cli import main
+from povmfit.fitting.cli.main import main
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
 
 

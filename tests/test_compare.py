@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from povmfit.fitting.compare import candidate_models, compare_models
-from povmfit.fitting.fit import fit_scan
+from povmfit.fitting.inference.compare import candidate_models, compare_models
+from povmfit.fitting.inference.fit import fit_scan
 from povmfit.models import parse_model_spec
 
 from simulated import Experiment

@@ -11,9 +11,9 @@ import json
 import numpy as np
 import pytest
 
-from povmfit.fitting.cross_check import cross_check
-from povmfit.fitting.pointwise_wigner import pointwise_wigner
-from povmfit.fitting.reconstruct import reconstruct_povm
+from povmfit.fitting.tomography.cross_check import cross_check
+from povmfit.fitting.tomography.pointwise_wigner import pointwise_wigner
+from povmfit.fitting.tomography.reconstruct import reconstruct_povm
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
 
 SPEC = "array:4+dark"

@@ -14,8 +14,8 @@ import warnings
 import numpy as np
 import pytest
 
-from povmfit.fitting._io import InputError
-from povmfit.fitting.detector_file import (
+from povmfit.fitting.data.errors import DetectorFileError
+from povmfit.fitting.data.detector_file import (
     DetectorRecord,
     EnsembleClippingWarning,
     draw_parameter_ensemble,
@@ -83,7 +83,7 @@ def _edited(tmp_path, edit):
 )
 def test_bad_files_are_refused_with_one_line(tmp_path, edit, message):
     path = _edited(tmp_path, edit)
-    with pytest.raises(InputError, match=message) as caught:
+    with pytest.raises(DetectorFileError, match=message) as caught:
         load_detector(path)
     assert "\n" not in str(caught.value) and str(path) in str(caught.value)
 
@@ -91,12 +91,12 @@ def test_bad_files_are_refused_with_one_line(tmp_path, edit, message):
 def test_non_json_content_is_refused_without_executing_it(tmp_path):
     path = tmp_path / "detector.json"
     path.write_bytes(pickle.dumps({"schema": "povmfit.detector/1"}))
-    with pytest.raises(InputError, match="not"):
+    with pytest.raises(DetectorFileError, match="not"):
         load_detector(path)
     path.write_text('{"schema": "povmfit.detector/1", "covariance": NaN}')
-    with pytest.raises(InputError, match="not valid JSON"):
+    with pytest.raises(DetectorFileError, match="not valid JSON"):
         load_detector(path)
-    with pytest.raises(InputError, match="cannot read"):
+    with pytest.raises(DetectorFileError, match="cannot read"):
         load_detector(tmp_path / "missing.json")
 
 

@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from povmfit.fitting._io import InputError
-from povmfit.fitting.detector_file import DetectorRecord
-from povmfit.fitting.emulator import Emulator, load_povm_csv
+from povmfit.fitting.data.errors import PovmfitError
+from povmfit.fitting.data.detector_file import DetectorRecord
+from povmfit.fitting.emulation.emulator import Emulator, load_povm_csv
 from povmfit.models import (
     coherent_distribution,
     parse_model_spec,
@@ -160,7 +160,7 @@ def test_saturated_array_reports_capped_counts():
 def test_pnr_model_has_no_patterns_but_responds():
     record = _record("pnr:5+dark", {"efficiency": 0.9, "dark_mean": 0.01})
     emulator = Emulator.from_record(record)
-    with pytest.raises(InputError):
+    with pytest.raises(PovmfitError):
         emulator.patterns("coherent:1", 10, seed=0)
     out = emulator.respond(np.full(100_000, 2), seed=1)
     theta = emulator.povms(3)[0]
@@ -194,9 +194,9 @@ def test_povm_csv_emulator_prefers_reconstruction_rows(tmp_path):
     emulator = Emulator.from_povm_csv(path)
     p = np.asarray(coherent_distribution(2.0, 30))
     np.testing.assert_allclose(emulator.probabilities("coherent:2"), recon @ p / p.sum() * p.sum(), atol=1e-9)
-    with pytest.raises(InputError, match="beyond the POVM table"):
+    with pytest.raises(PovmfitError, match="beyond the POVM table"):
         emulator.probabilities("coherent:20")
-    with pytest.raises(InputError, match="needs a fitted detector file"):
+    with pytest.raises(PovmfitError, match="needs a fitted detector file"):
         emulator.ensemble(3)
 
 
@@ -204,13 +204,13 @@ def test_povm_csv_refusals_name_the_line(tmp_path):
     theta = np.array([[0.9, 0.4], [0.1, 0.6]])
     path = tmp_path / "bad.csv"
     _write_povm_csv(path, theta, "model", extra=["1,1,0.6,0.0,magic"])
-    with pytest.raises(InputError, match=r"line 6, column 'source'"):
+    with pytest.raises(PovmfitError, match=r"line 6, column 'source'"):
         load_povm_csv(path)
     _write_povm_csv(path, theta, "model", extra=["1,1,0.6,0.0,model"])
-    with pytest.raises(InputError, match=r"line 6: second model row"):
+    with pytest.raises(PovmfitError, match=r"line 6: second model row"):
         load_povm_csv(path)
     _write_povm_csv(path, np.array([[0.9, 0.4], [0.1, 0.5]]), "model")
-    with pytest.raises(InputError, match="sum to 0.9"):
+    with pytest.raises(PovmfitError, match="sum to 0.9"):
         load_povm_csv(path)
 
 
@@ -232,9 +232,9 @@ def test_ensemble_probabilities_are_member_means_and_runs_use_one_member():
 
 def test_simulated_scan_fed_to_the_fitter_recovers_the_detector():
     # Monte Carlo round trip: truth within 3 standard errors for every parameter (fixed seed)
-    from povmfit.fitting.cmd_simulate import parse_probe_grid, simulate_counts
-    from povmfit.fitting.fit import fit_scan
-    from povmfit.fitting.scan import scan_from_arrays
+    from povmfit.fitting.cli.simulate import parse_probe_grid, simulate_counts
+    from povmfit.fitting.inference.fit import fit_scan
+    from povmfit.fitting.data.scan import scan_from_arrays
 
     truth = {"efficiency": 0.62, "dark_probability": 0.004, "crosstalk_probability": 0.06}
     record = _record("array:4+dark+crosstalk", truth)

@@ -14,8 +14,8 @@ import numpy as np
 import pytest
 from scipy import optimize, stats
 
-from povmfit.fitting.bootstrap import parametric_bootstrap
-from povmfit.fitting.fit import CHI2_95, fit_scan
+from povmfit.fitting.inference.bootstrap import parametric_bootstrap
+from povmfit.fitting.inference.fit import CHI2_95, fit_scan
 
 from simulated import Experiment, on_off_fisher_per_shot
 

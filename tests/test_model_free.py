@@ -5,11 +5,11 @@ import sys
 import numpy as np
 import pytest
 
-from povmfit.fitting.cmd_demo import demo_scan_path
-from povmfit.fitting.model_free import (
+from povmfit.fitting.cli.demo import demo_scan_path
+from povmfit.fitting.tomography.model_free import (
     ModelFreeJob, model_free_reconstructions, reconstructions_under_model, start_model_free,
 )
-from povmfit.fitting.scan import load_scan
+from povmfit.fitting.data.scan import load_scan
 
 
 @pytest.fixture(scope="module")

@@ -8,7 +8,7 @@ import pytest
 
 from scipy import optimize
 
-from povmfit.fitting.pointwise_wigner import (
+from povmfit.fitting.tomography.pointwise_wigner import (
     box_least_squares,
     phase_insensitivity_test,
     pointwise_wigner,

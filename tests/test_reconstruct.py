@@ -8,7 +8,7 @@ import cvxpy as cp
 import numpy as np
 import pytest
 
-from povmfit.fitting.reconstruct import (
+from povmfit.fitting.tomography.reconstruct import (
     ProblemLayout,
     Progress,
     build_layout,

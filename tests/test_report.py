@@ -17,7 +17,7 @@ from povmfit.models import parse_model_spec, probe_distributions
 HEADINGS = ("Figures", "Model verdict", "Outcome probabilities", "Residuals", "POVM",
             "Wigner functions", "Cross-check", "Provenance")
 TRUE = {"efficiency": 0.6, "dark_probability": 0.01}  # invented test detector
-PIPELINE_MODULES = ("povmfit.fitting.cross_check", "povmfit.fitting.pointwise_wigner", "povmfit.fitting.cmd_reconstruct")
+PIPELINE_MODULES = ("povmfit.fitting.tomography.cross_check", "povmfit.fitting.tomography.pointwise_wigner", "povmfit.fitting.cli.reconstruct")
 
 
 def simulated_counts(seed: int = 7):
@@ -46,11 +46,11 @@ def write_scan_csv(path, label_of_first="dark"):
 
 def report_inputs(scan_path):
     """The arguments of write_report built from the committed stages (no pipeline)."""
-    from povmfit.fitting.compare import compare_models
-    from povmfit.fitting.datasheet import datasheet_document
-    from povmfit.fitting.pipeline import model_povm_with_errors
-    from povmfit.fitting.reconstruct import reconstruct_povm
-    from povmfit.fitting.scan import load_scan
+    from povmfit.fitting.inference.compare import compare_models
+    from povmfit.fitting.outputs.datasheet import datasheet_document
+    from povmfit.fitting.workflow.characterise import model_povm_with_errors
+    from povmfit.fitting.tomography.reconstruct import reconstruct_povm
+    from povmfit.fitting.data.scan import load_scan
 
     scan = load_scan(scan_path)
     comparison = compare_models(scan, ["array:4", "array:4+dark"], cv_folds=0)
@@ -61,7 +61,7 @@ def report_inputs(scan_path):
                "povm": {"max_abs_z": 1.5, "agrees": True, "z": [[0.5] * 5] * 3}}
     sheet = datasheet_document(scan, result, options={"model": "auto", "note": "<script>alert(1)</script>"},
                                comparison=comparison.to_dict(), verdict=comparison.verdict, cross_check=summary)
-    from povmfit.fitting.pointwise_wigner import pointwise_wigner, smoothed_wigner
+    from povmfit.fitting.tomography.pointwise_wigner import pointwise_wigner, smoothed_wigner
 
     pointwise = pointwise_wigner(scan.coherent_photons, scan.thermal_photons, scan.counts, scan.phase_rad,
                                  bootstrap=10, seed=0, quiet=True)
@@ -81,7 +81,7 @@ def direct_inputs(tmp_path_factory):
 @pytest.fixture(scope="module")
 def direct_report(direct_inputs):
     """A report written by write_report from parts."""
-    from povmfit.fitting.report import write_report
+    from povmfit.fitting.outputs.report import write_report
 
     folder, inputs = direct_inputs
     return write_report(folder / "out", *inputs)
@@ -117,7 +117,7 @@ def test_write_report_directly_escapes_text_and_writes_plots(direct_report):
 
 
 def test_standardised_residuals_and_wilson_interval():
-    from povmfit.fitting.report import standardised_residuals, wilson_interval
+    from povmfit.fitting.outputs.report import standardised_residuals, wilson_interval
 
     scan = types.SimpleNamespace(shots=np.array([100]), counts=np.array([[60, 40]]))
     z = standardised_residuals(scan, np.array([[0.5, 0.5]]))
@@ -128,7 +128,7 @@ def test_standardised_residuals_and_wilson_interval():
 
 
 def test_model_curves_from_the_fitted_povm_match_the_compiled_model(direct_inputs, monkeypatch):
-    from povmfit.fitting import report
+    from povmfit.fitting.outputs import report
 
     _, (scan, result, _, _, _) = direct_inputs
     reference = report.model_curves(scan, result)  # the compiled JAX model on the curve grid
@@ -149,7 +149,7 @@ def test_model_curves_from_the_fitted_povm_match_the_compiled_model(direct_input
 
 
 def test_symmetric_log_axis_and_ticks_by_hand():
-    from povmfit.fitting.plots import _Axis, _linear_ticks, _symlog_ticks
+    from povmfit.fitting.outputs.plots import _Axis, _linear_ticks, _symlog_ticks
 
     # linear part 0..0.1 takes half a decade; 0.1..10 two decades: 2.5 units over 100 px (by hand)
     axis = _Axis(0.0, 10.0, 100.0, threshold=0.1)
@@ -165,7 +165,7 @@ def test_symmetric_log_axis_and_ticks_by_hand():
 
 
 def test_wigner_points_are_rotated_onto_the_real_axis():
-    from povmfit.fitting.report import wigner_series
+    from povmfit.fitting.outputs.report import wigner_series
 
     alpha = np.array([-0.6, 0.8j, 0.3 + 0.4j])
     values = np.array([[0.1, 0.2, 0.3], [0.4, 0.5, 0.6]])
@@ -211,7 +211,7 @@ def test_report_renders_in_headless_browser(direct_report, tmp_path):
 
 
 def test_fit_command_writes_report_that_renders(tmp_path):
-    from povmfit.fitting.cli import main
+    from povmfit.fitting.cli.main import main
 
     missing = [m for m in PIPELINE_MODULES if importlib.util.find_spec(m) is None]
     if missing:

@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from povmfit.fitting._io import InputError
-from povmfit.fitting.scan import MAX_CUTOFF, Scan, load_scan, scan_from_arrays, write_scan
+from povmfit.fitting.data.errors import ScanError
+from povmfit.fitting.data.scan import MAX_CUTOFF, Scan, load_scan, scan_from_arrays, write_scan
 from povmfit.models import choose_cutoff
 
 WIDE = """probe,coherent_photons,thermal_photons,shots,count_0,count_1,count_2
@@ -31,8 +31,8 @@ def write(tmp_path, text, name="scan.csv"):
 
 
 def refusal(path, prefix, *fragments):
-    """Load ``path``, expect an InputError whose one-line message starts with ``prefix``."""
-    with pytest.raises(InputError) as caught:
+    """Load ``path``, expect an ScanError whose one-line message starts with ``prefix``."""
+    with pytest.raises(ScanError) as caught:
         load_scan(path)
     message = str(caught.value)
     assert "\n" not in message
@@ -156,7 +156,7 @@ def test_loading_never_modifies_the_input(tmp_path):
     path = write(tmp_path, WIDE)
     before = (path.read_bytes(), os.stat(path).st_mtime_ns)
     load_scan(path)
-    with pytest.raises(InputError):
+    with pytest.raises(ScanError):
         load_scan(write(tmp_path, WIDE.replace("60,30,10", "60,30,11"), "bad.csv"))
     assert (path.read_bytes(), os.stat(path).st_mtime_ns) == before
 
@@ -408,15 +408,15 @@ def test_parquet_pattern_must_be_text(tmp_path):
 
 
 def test_arrays_are_validated_like_files():
-    with pytest.raises(InputError, match=r"^<memory>: row 2: column count_1: count must be >= 0, got -1$"):
+    with pytest.raises(ScanError, match=r"^<memory>: row 2: column count_1: count must be >= 0, got -1$"):
         scan_from_arrays([1.0, 2.0], [0.0, 0.0], [[3, 4], [5, -1]])
-    with pytest.raises(InputError, match=r"^<memory>: row 1: column coherent_photons: not a number"):
+    with pytest.raises(ScanError, match=r"^<memory>: row 1: column coherent_photons: not a number"):
         scan_from_arrays([np.nan, 2.0], [0.0, 0.0], [[3, 4], [5, 1]])
-    with pytest.raises(InputError, match=r"^lab: column thermal_photons: expected shape \(2,\)"):
+    with pytest.raises(ScanError, match=r"^lab: column thermal_photons: expected shape \(2,\)"):
         scan_from_arrays([1.0, 2.0], [0.0], [[3, 4], [5, 1]], source="lab")
-    with pytest.raises(InputError, match=r"^<memory>: column counts: expected shape"):
+    with pytest.raises(ScanError, match=r"^<memory>: column counts: expected shape"):
         scan_from_arrays([1.0], [0.0], [[3]])
-    with pytest.raises(InputError, match=r"^<memory>: row 1: column count_0: all counts of this probe are 0"):
+    with pytest.raises(ScanError, match=r"^<memory>: row 1: column count_0: all counts of this probe are 0"):
         scan_from_arrays([1.0], [0.0], [[0, 0]])
     scan = scan_from_arrays([1.0, 2.0], [0.0, 0.5], np.array([[3.0, 4.0], [5.0, 1.0]]), labels=["x", "y"])
     assert isinstance(scan, Scan) and scan.sha256 is None and scan.source == "<memory>"

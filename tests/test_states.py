@@ -7,8 +7,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from povmfit.fitting._io import InputError
-from povmfit.fitting.states import distribution_from_array, parse_state, state_distribution
+from povmfit.fitting.data.errors import StateError
+from povmfit.fitting.data.states import distribution_from_array, parse_state, state_distribution
 
 
 def test_parse_state_kinds():
@@ -22,7 +22,7 @@ def test_parse_state_kinds():
              "displaced_thermal:1"],
 )
 def test_bad_state_text_is_refused_in_one_line(text):
-    with pytest.raises(InputError) as caught:
+    with pytest.raises(StateError) as caught:
         state_distribution(text)
     assert "\n" not in str(caught.value) and repr(text) in str(caught.value)
 
@@ -83,14 +83,14 @@ def test_csv_columns(tmp_path):
     path.write_text("photons,heralded,probability\n0,0.1,0.5\n1,0.9,0.5\n")
     np.testing.assert_array_equal(state_distribution(str(path)), [0.5, 0.5])
     np.testing.assert_array_equal(state_distribution(f"{path}:heralded"), [0.1, 0.9])
-    with pytest.raises(InputError, match="no column 'missing'"):
+    with pytest.raises(StateError, match="no column 'missing'"):
         state_distribution(f"{path}:missing")
     path.write_text("photons,probability\n0,0.5\n2,0.5\n")
-    with pytest.raises(InputError, match=r"line 3, column 'photons'"):
+    with pytest.raises(StateError, match=r"line 3, column 'photons'"):
         state_distribution(str(path))
     path.write_text("probability\n0.5\n0.4\n")
-    with pytest.raises(InputError, match="sum to 0.9"):
+    with pytest.raises(StateError, match="sum to 0.9"):
         state_distribution(str(path))
     path.write_text("probability\n0.5\nx\n")
-    with pytest.raises(InputError, match=r"line 3, column 'probability'"):
+    with pytest.raises(StateError, match=r"line 3, column 'probability'"):
         state_distribution(str(path))

@@ -1,4 +1,4 @@
-from povmfit.fitting.cli import entry
+from povmfit.fitting.cli.main import entry
 
 if __name__ == "__main__":
     entry()

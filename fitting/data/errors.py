@@ -1,0 +1,36 @@
+"""povmfit's typed errors. Each message is one line: the file, row and column (or the
+argument) and what is wrong. The command line prints it and exits with code 2."""
+from __future__ import annotations
+
+__all__ = [
+    "PovmfitError", "ArgumentError", "InputFileError", "ScanError", "DetectorFileError", "StateError",
+    "NotIdentifiable",
+]
+
+
+class PovmfitError(ValueError):
+    """Base of every error povmfit raises about its input."""
+
+
+class ArgumentError(PovmfitError):
+    """A value passed to a public function (or a command-line option) is out of its range."""
+
+
+class InputFileError(PovmfitError):
+    """A file given to povmfit cannot be read or has bad content."""
+
+
+class ScanError(InputFileError):
+    """A scan (file or arrays) is malformed."""
+
+
+class DetectorFileError(InputFileError):
+    """A detector file or POVM table is malformed."""
+
+
+class StateError(PovmfitError):
+    """An input-state description or photon-number distribution is malformed."""
+
+
+class NotIdentifiable(PovmfitError):
+    """The scan cannot determine the requested model (wrong outcomes, too few probe settings)."""

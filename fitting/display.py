@@ -1,0 +1,52 @@
+"""Plain-text and HTML formatting shared by the result objects (``summary()`` and
+``_repr_html_()``): numbers with uncertainties in the usual ``0.6194 ± 0.0186`` form and
+small tables. No physics and no statistics here."""
+from __future__ import annotations
+
+import html
+import math
+
+__all__ = ["format_number", "format_uncertain", "text_table", "html_table", "html_block"]
+
+
+def format_number(value, digits: int = 4) -> str:
+    """``value`` with ``digits`` significant digits; "n/a" for None or NaN."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "n/a"
+    if isinstance(value, (bool, int)) or not isinstance(value, float):
+        return str(value)
+    return f"{value:.{digits}g}"
+
+
+def format_uncertain(value, stderr, digits: int = 2) -> str:
+    """``value ± stderr`` with the uncertainty to ``digits`` significant digits and the value
+    rounded to the same decimal place (``0.61940 ± 0.00053``)."""
+    if value is None or stderr is None or not math.isfinite(value) or not math.isfinite(stderr) or stderr <= 0:
+        return format_number(value, 6)
+    place = digits - 1 - math.floor(math.log10(abs(stderr)))
+    if place > 0:
+        return f"{value:.{place}f} ± {stderr:.{place}f}"
+    return f"{value:.6g} ± {stderr:.{digits}g}"
+
+
+def text_table(header: list[str], rows: list[list[str]]) -> str:
+    """Left-aligned first column, right-aligned others, two spaces apart."""
+    cells = [list(map(str, header))] + [list(map(str, row)) for row in rows]
+    widths = [max(len(row[i]) for row in cells) for i in range(len(header))]
+    lines = []
+    for row in cells:
+        lines.append("  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(row, widths))).rstrip())
+    lines.insert(1, "  ".join("-" * w for w in widths))
+    return "\n".join(lines)
+
+
+def html_table(header: list[str], rows: list[list[str]]) -> str:
+    head = "".join(f"<th>{html.escape(str(h))}</th>" for h in header)
+    body = "".join("<tr>" + "".join(f"<td>{html.escape(str(c))}</td>" for c in row) + "</tr>" for row in rows)
+    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
+
+
+def html_block(title: str, lines: list[str], tables: list[str] = ()) -> str:
+    """A titled block for notebooks: escaped lines, then the given (already HTML) tables."""
+    text = "".join(f"<div>{html.escape(line)}</div>" for line in lines)
+    return f"<div class='povmfit'><strong>{html.escape(title)}</strong>{text}{''.join(tables)}</div>"

@@ -1,0 +1,135 @@
+"""Cross-check of a parametric fit against the model-free reconstructions.
+
+``cross_check`` compares (1) the model POVM with the reconstructed POVM entry by entry and
+(2) the model's Wigner values with the pointwise values, in standard-error units with the
+two errors combined in quadrature, z = (model - reconstruction) / sqrt(se_model^2 + se_rec^2).
+
+Only photon numbers the probes constrain are compared: ``reconstruction.constrained``, i.e.
+where the expected number of shots carrying n photons, sum_p shots_p P_p(n), is at least 1%
+of its largest value. The last outcome is left out of the chi-square (every column sums to 1).
+The reconstruction's errors are correlated across n by the smoothness regulariser and do not
+include its bias, so the chi-square is a summary, not an exact test.
+
+By default the model's Wigner values are what the pointwise estimator would return for the
+model's exact outcome probabilities (same probes, same saturation number M), so the
+estimator's saturation bias cancels in the comparison.
+"""
+from __future__ import annotations
+
+
+import numpy as np
+from scipy.special import chdtrc
+
+from povmfit.models import probe_distributions_numpy
+
+from povmfit.fitting.tomography.pointwise_wigner import _solve, thermal_design, wigner_from_p
+
+__all__ = ["cross_check", "model_pointwise_wigner", "CONSISTENT_LEVEL"]
+
+CONSISTENT_LEVEL = 0.01  # verdict "tension" when a p-value falls below this level
+_ERROR_FLOOR = 1e-9
+POVM_TOLERANCE = 1e-3  # absolute: smaller model-vs-reconstruction differences count as agreement
+
+
+def model_pointwise_wigner(model_theta, pointwise, coherent, thermal) -> np.ndarray:
+    """Pointwise estimator applied to the model's exact probabilities: (n_outcomes, n_points).
+
+    ``coherent``/``thermal`` are the scan's probe settings; ``model_theta`` (K, n_photons) must
+    reach the probes' photon-number cutoff.
+    """
+    model_theta = np.asarray(model_theta, dtype=float)
+    out = np.empty((model_theta.shape[0], len(pointwise.probes)))
+    for i, idx in enumerate(pointwise.probes):
+        distributions = probe_distributions_numpy(np.asarray(coherent)[idx], np.asarray(thermal)[idx], model_theta.shape[1])
+        q = np.clip(distributions @ model_theta.T, 0.0, None)
+        q /= q.sum(axis=1, keepdims=True)
+        design = thermal_design(np.asarray(thermal)[idx], pointwise.saturation)
+        out[:, i] = wigner_from_p(_solve(design, np.ones(len(idx)), q, pointwise.method))
+    return out
+
+
+def _summary(z: np.ndarray, dof: int) -> dict:
+    chi_square = float(np.sum(z**2))
+    return {"chi_square": chi_square, "dof": int(dof),
+            "p_value": float(chdtrc(dof, chi_square)) if dof > 0 else None,
+            "max_abs_z": float(np.max(np.abs(z))) if z.size else None}
+
+
+def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr) -> dict:
+    n = min(model_theta.shape[1], reconstruction.n_photons)
+    photons = np.nonzero(reconstruction.constrained[:n])[0]
+    sigma = np.sqrt(model_stderr[:, photons] ** 2 + reconstruction_stderr[:, photons] ** 2)
+    # Resolution floor: with N expected shots carrying n photons, an entry cannot be known
+    # better than about 3/N (the 95 % upper limit after zero events, "rule of three"), and
+    # entries pinned at 0 or 1 by the constraints have no bootstrap spread at all; differences
+    # below POVM_TOLERANCE are treated as agreement.
+    floor = np.maximum(3.0 / np.maximum(reconstruction.probe_weight[photons], 1.0), POVM_TOLERANCE)
+    z = (model_theta[:, photons] - reconstruction.theta[:, photons]) / np.maximum(sigma, floor[None, :])
+    out = _summary(z[:-1], z[:-1].size)
+    if z.size:
+        # the last outcome is fixed by completeness; it is left out of the statistic and the search
+        k, j = np.unravel_index(int(np.argmax(np.abs(z[:-1]))), z[:-1].shape)
+        out["largest"] = {"outcome": int(k), "photons": int(photons[j]), "z": float(z[k, j])}
+    out["photons_compared"] = photons.tolist()
+    out["z"] = z.tolist()
+    return out
+
+
+def _wigner_part(model_values, model_stderr, pointwise) -> dict:
+    sigma = np.sqrt(np.asarray(model_stderr) ** 2 + pointwise.stderr**2)
+    z = (np.asarray(model_values) - pointwise.values) / np.maximum(sigma, _ERROR_FLOOR)
+    out = _summary(z[:-1], z[:-1].size)
+    k, i = np.unravel_index(int(np.argmax(np.abs(z[:-1]))), z[:-1].shape)
+    out["largest"] = {"outcome": int(k), "re_alpha": float(pointwise.alpha[i].real),
+                      "im_alpha": float(pointwise.alpha[i].imag), "z": float(z[k, i])}
+    return out
+
+
+def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, model_wigner=None,
+                model_wigner_stderr=None, probes=None, reconstruction_stderr=None) -> dict:
+    """Compare a fitted model with the reconstructions.
+
+    Args:
+        model_theta, model_theta_stderr: (n_outcomes, n_photons) model POVM and its standard
+            errors (e.g. propagated from the fit covariance).
+        reconstruction: :class:`~povmfit.fitting.reconstruct.Reconstruction`.
+        pointwise: :class:`~povmfit.fitting.pointwise_wigner.PointwiseWigner` or None.
+        model_wigner: (n_outcomes, n_points) model Wigner values at ``pointwise.alpha``; default:
+            the pointwise estimator applied to the model's probabilities (needs ``probes`` =
+            (coherent_photons, thermal_photons) arrays of the scan).
+        model_wigner_stderr: optional errors of ``model_wigner`` (default 0).
+        reconstruction_stderr: errors of the reconstruction to combine with the model's
+            (default ``reconstruction.stderr``; pass zeros when ``model_theta_stderr`` already
+            is the spread of reconstructions under the model).
+    Returns:
+        JSON-able dict: ``povm`` {chi_square, dof, p_value, max_abs_z, largest {outcome,
+        photons, z}, photons_compared, z (n_outcomes x compared)}; ``wigner`` (or None)
+        {chi_square, dof, p_value, max_abs_z, largest {outcome, re_alpha, im_alpha, z}};
+        ``error_combination`` "quadrature"; ``constrained_rule``; ``level``; ``verdict``
+        ("consistent" or "tension at outcome k, n photons" / "tension in the Wigner values of
+        outcome k at alpha = ...").
+    """
+    model_theta = np.asarray(model_theta, dtype=float)
+    model_stderr = np.zeros_like(model_theta) if model_theta_stderr is None else np.asarray(model_theta_stderr, dtype=float)
+    rec_stderr = reconstruction.stderr if reconstruction_stderr is None else np.asarray(reconstruction_stderr, dtype=float)
+    povm = _povm_part(model_theta, model_stderr, reconstruction, rec_stderr)
+    wigner = None
+    if pointwise is not None:
+        if model_wigner is None:
+            if probes is None:
+                raise ValueError("cross_check needs probes=(coherent, thermal) to forward-model the Wigner values")
+            model_wigner = model_pointwise_wigner(model_theta, pointwise, *probes)
+        stderr = np.zeros_like(pointwise.values) if model_wigner_stderr is None else model_wigner_stderr
+        wigner = _wigner_part(model_wigner, stderr, pointwise)
+    verdict = "consistent"
+    if povm["p_value"] is not None and povm["p_value"] < CONSISTENT_LEVEL:
+        verdict = f"tension at outcome {povm['largest']['outcome']}, {povm['largest']['photons']} photons"
+    elif wigner is not None and wigner["p_value"] is not None and wigner["p_value"] < CONSISTENT_LEVEL:
+        at = wigner["largest"]
+        verdict = (f"tension in the Wigner values of outcome {at['outcome']} at alpha = "
+                   f"{complex(at['re_alpha'], at['im_alpha']):.3g}")
+    return {
+        "povm": povm, "wigner": wigner, "error_combination": "quadrature",
+        "constrained_rule": "photon numbers with expected shots sum_p shots_p P_p(n) >= 1% of the maximum",
+        "level": CONSISTENT_LEVEL, "verdict": verdict,
+    }
