@@ -15,9 +15,7 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.outputs.datasheet import figures
-from povmfit.fitting.inference.fit import fit_scan
-from povmfit.fitting.data.scan import scan_from_arrays
+import povmfit
 from povmfit.models import parse_model_spec, probe_distributions
 
 # The invented "true" device that the simulation stands in for.
@@ -38,7 +36,7 @@ def simulate_scan(seed: int, shots: int = 20_000):
     rng = np.random.default_rng(seed)
     counts = rng.multinomial(shots, q / q.sum(axis=1, keepdims=True))
     labels = ["dark"] * 2 + [f"pulse {m:g}" for m in coherent[2:]]
-    return scan_from_arrays(coherent, thermal, counts, labels=labels, source="KP-8 scan (simulated)")
+    return povmfit.scan_from_arrays(coherent, thermal, counts, labels=labels, source="KP-8 scan (simulated)")
 
 
 def main(argv=None) -> int:
@@ -49,12 +47,12 @@ def main(argv=None) -> int:
     scan = simulate_scan(args.seed)
     print(f"Kestrel Photonics KP-8 at the Harbour Street Quantum Lab (simulated data): "
           f"{scan.n_probes} probes, {int(scan.shots.sum())} shots, outcomes 0..{scan.max_outcome} pixels")
-    result = fit_scan(scan, parse_model_spec(DEVICE), calibration_uncertainty=CALIBRATION)
+    result = povmfit.fit(scan, DEVICE, calibration_uncertainty=CALIBRATION)
     print(f"model {result.model.spec}: deviance {result.deviance:.1f} on {result.dof} dof, "
           f"goodness-of-fit p = {result.p_value:.2f}, converged: {result.converged}\n")
 
     print(f"{'figure':<26}{'value':>11}{'stderr':>11}{'stat':>11}{'calib':>11}   95% interval")
-    for name, fig in figures(result, gate_duration_s=GATE_DURATION_S).items():
+    for name, fig in result.figures(gate_duration_s=GATE_DURATION_S).items():
         stat = fig.get("stat_stderr")
         calib = fig.get("calibration_stderr")
         print(f"{name:<26}{fig['value']:>11.4g}{fig['stderr']:>11.2g}"

@@ -15,8 +15,7 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.inference.compare import compare_models
-from povmfit.fitting.data.scan import scan_from_arrays
+import povmfit
 from povmfit.models import parse_model_spec, probe_distributions
 
 DEVICE = "array:4+dark+crosstalk"  # what the simulated device really is
@@ -32,7 +31,7 @@ def simulate_scan(seed: int, shots: int = 20_000):
     theta = np.asarray(model.povm(model.pack(TRUE_VALUES), n_photons))
     q = np.asarray(probe_distributions(coherent, thermal, n_photons)) @ theta.T
     counts = np.random.default_rng(seed).multinomial(shots, q / q.sum(axis=1, keepdims=True))
-    return scan_from_arrays(coherent, thermal, counts, source="KP-4T scan (simulated)")
+    return povmfit.scan_from_arrays(coherent, thermal, counts, source="KP-4T scan (simulated)")
 
 
 def print_table(comparison) -> None:
@@ -50,7 +49,7 @@ def main(argv=None) -> int:
 
     scan = simulate_scan(args.seed)
     print("Kestrel Photonics KP-4T at the Harbour Street Quantum Lab (simulated data)\n")
-    comparison = compare_models(scan, CANDIDATES, cv_folds=5, cv_top=2, seed=args.seed)
+    comparison = povmfit.compare(scan, CANDIDATES, cv_folds=5, cv_top=2, seed=args.seed)
     print_table(comparison)
     print("\nlikelihood-ratio tests (one feature added at a time):")
     for test in comparison.tests:

@@ -29,10 +29,7 @@ import argparse
 
 import numpy as np
 
-from povmfit.fitting.data.detector_file import DetectorRecord
-from povmfit.fitting.emulation.emulator import Emulator
-from povmfit.fitting.inference.fit import fit_scan
-from povmfit.fitting.data.scan import scan_from_arrays
+import povmfit
 from povmfit.models import parse_model_spec, probe_distributions, thermal_distribution
 
 HERALD = "threshold+dark"
@@ -49,17 +46,8 @@ def characterise_herald(seed: int, shots: int = 5_000):
     theta = np.asarray(model.povm(model.pack(TRUE_HERALD), N_PHOTONS))
     q = np.asarray(probe_distributions(coherent, thermal, N_PHOTONS)) @ theta.T
     counts = np.random.default_rng(seed).multinomial(shots, q / q.sum(axis=1, keepdims=True))
-    scan = scan_from_arrays(coherent, thermal, counts, source="KP-1 scan (simulated)")
-    return fit_scan(scan, model)
-
-
-def record_of(result) -> DetectorRecord:
-    names = result.model.parameter_names
-    return DetectorRecord(
-        model=result.model, parameters={n: result.values[n] for n in names},
-        covariance=result.covariance[: len(names), : len(names)], gate_duration_s=None,
-        provenance={"source": "examples/heralded_source.py (simulated)"}, bounds=result.model.bounds(),
-    )
+    scan = povmfit.scan_from_arrays(coherent, thermal, counts, source="KP-1 scan (simulated)")
+    return povmfit.fit(scan, model)
 
 
 def heralded_figures(click_probability: np.ndarray, pairs: np.ndarray) -> dict:
@@ -89,8 +77,8 @@ def main(argv=None) -> int:
     for name in result.model.parameter_names:
         print(f"  {name:<18} {result.values[name]:.5f} +- {result.stderr[name]:.5f}   (simulated truth {TRUE_HERALD[name]})")
 
-    record = record_of(result)
-    point = Emulator.from_record(record)
+    record = result.to_detector(provenance={"source": "examples/heralded_source.py (simulated)"})
+    point = povmfit.Emulator.from_record(record)
     ensemble = point.ensemble(args.ensemble, seed=args.seed)
     pairs = np.asarray(thermal_distribution(PAIR_MEAN, N_PHOTONS))
     at_point = heralded_figures(point.povms(N_PHOTONS)[:, 1, :], pairs)

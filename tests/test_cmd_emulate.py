@@ -15,7 +15,7 @@ import pytest
 from scipy import stats
 
 from povmfit.fitting.cli.main import build_parser, main
-from povmfit.fitting.cli.simulate import parse_probe_grid
+from povmfit.fitting.emulation.simulate import parse_probe_grid
 from povmfit.fitting.data.detector_file import DetectorRecord, save_detector
 from povmfit.fitting.emulation.emulator import Emulator
 from povmfit.fitting.data.scan import load_scan

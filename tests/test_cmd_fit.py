@@ -5,7 +5,7 @@ import numpy as np
 import pytest
 
 from povmfit.fitting.cli.main import main
-from povmfit.fitting.cli.demo import demo_scan_path, generate_demo_scan
+from povmfit.fitting.data.demo import demo_scan_path, generate_demo_scan
 from povmfit.fitting.data.scan import load_scan, write_scan
 
 from simulated import Experiment

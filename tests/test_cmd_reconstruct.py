@@ -64,3 +64,59 @@ def test_default_output_folder_and_bad_input(tmp_path, monkeypatch, capsys):
     err = capsys.readouterr().err
     assert "bad.csv" in err and len(err.strip().splitlines()) == 1
     assert not (tmp_path / "bad_out").exists()  # nothing written
+
+
+def rows_of(path, sources):
+    return [r for r in read(path) if r["source"] in sources]
+
+
+def test_fit_and_reconstruct_write_the_same_reconstruction(tmp_path, capsys):
+    # Source: the fit command's own povm.csv and wigner.csv (one estimator, same seed and
+    # resamples, so the rows must be equal character for character; common practice, no source).
+    scan = tmp_path / "device.csv"
+    write_scan(scan, seed=5)
+    assert main(["fit", str(scan), "--model", "array:2+dark", "--out", str(tmp_path / "fit"), "--quiet",
+                 "--no-report"]) == 0
+    assert main(["reconstruct", str(scan), "--out", str(tmp_path / "rec"), "--quiet"]) == 0
+    fitted = rows_of(tmp_path / "fit" / "povm.csv", {"reconstruction"})
+    reconstructed = rows_of(tmp_path / "rec" / "povm.csv", {"reconstruction"})
+    assert fitted == reconstructed and len(fitted) > 0
+    assert {r["source"] for r in read(tmp_path / "fit" / "povm.csv")} == {"reconstruction", "model"}
+    wigner_sources = {"pointwise", "smoothed"}
+    assert rows_of(tmp_path / "fit" / "wigner.csv", wigner_sources) == rows_of(tmp_path / "rec" / "wigner.csv", wigner_sources)
+    details = json.loads((tmp_path / "rec" / "reconstruction.json").read_text())
+    assert details["reconstruction"]["bootstrap"] == 50 and details["pointwise"]["method"] == "box"
+
+
+def test_text_summary_and_flag_errors(tmp_path, capsys):
+    scan = tmp_path / "device.csv"
+    write_scan(scan)
+    assert main(["reconstruct", str(scan), "--out", str(tmp_path / "out"), "--bootstrap", "3", "--saturation", "1"]) == 0
+    captured = capsys.readouterr()
+    assert "outcomes x" in captured.out and "smoothed curve  M = 1" in captured.out
+    assert str(tmp_path / "out" / "povm.csv") in captured.out
+    assert captured.err == ""  # no progress bar: stderr is not a terminal here
+    for flag, value in (("--bootstrap", "-1"), ("--seed", "-2"), ("--saturation", "0")):
+        assert main(["reconstruct", str(scan), "--out", str(tmp_path / "bad"), flag, value]) == 2
+        err = capsys.readouterr().err
+        assert flag in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "bad").exists()  # nothing written
+
+
+def test_progress_bar_only_on_a_terminal():
+    # Source: common practice, no source (no control characters in logs and pipes).
+    import io
+
+    from povmfit.fitting.outputs.terminal import TerminalProgress
+
+    class FakeTerminal(io.StringIO):
+        def isatty(self):
+            return True
+
+    silent, shown = io.StringIO(), FakeTerminal()
+    for stream in (silent, shown):
+        bar = TerminalProgress(stream)
+        for i in range(4):
+            bar("bootstrap (POVM)", i + 1, 4)
+    assert silent.getvalue() == ""
+    assert "4/4" in shown.getvalue()

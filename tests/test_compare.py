@@ -6,10 +6,14 @@ Criteria and their sources: BIC (Schwarz, Ann. Stat. 6, 461 (1978)) is consisten
 adequacy is the deviance goodness-of-fit p-value (chi-square approximation, common practice,
 no source). Scans are simulated here from exact model probabilities with fixed seeds.
 """
+import dataclasses
+import json
+
 import numpy as np
 import pytest
 from scipy import stats
 
+from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.inference.compare import candidate_models, compare_models
 from povmfit.fitting.inference.fit import fit_scan
 from povmfit.models import parse_model_spec
@@ -101,3 +105,39 @@ def test_selection_rate_over_ten_seeds(spec, truth, families):
     assert sum(c == model for c in chosen) >= 9, [c.spec for c in chosen]
     extra = [c for c in chosen if set(c.features) - set(model.features)]
     assert len(extra) <= 1, [c.spec for c in extra]
+
+
+def test_comparison_views_agree_with_the_table():
+    # views of one ranking (threshold family, 2 candidates): plumbing checks against the
+    # table itself, no numeric source needed beyond equality
+    truth = {"efficiency": 0.4, "dark_probability": 1e-3}
+    scan = Experiment("threshold+dark", truth, COHERENT, shots=20_000).scan(np.random.default_rng(8))
+    calls = []
+    comparison = compare_models(scan, ["threshold", "threshold+dark"], cv_folds=0,
+                                progress=lambda *args: calls.append(args))
+    assert calls == [("model ranking", 0, 2), ("model ranking", 1, 2), ("model ranking", 2, 2)]
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        comparison.chosen = None
+    rows = comparison.rows()
+    assert [r["model"] for r in rows] == [r["model"] for r in comparison.table]
+    payload = json.loads(json.dumps(comparison.to_dict(), allow_nan=False))
+    assert payload["chosen"] == comparison.chosen.spec and payload["verdict"] == comparison.verdict
+    assert [r["model"] for r in payload["candidates"]] == [r["model"] for r in rows]
+    frame = comparison.to_dataframe()
+    assert list(frame.index) == [r["model"] for r in rows]
+    assert list(frame["bic"]) == [r["bic"] for r in rows]
+    text = comparison.summary()
+    for row in rows:
+        assert row["model"] in text and f"{row['deviance']:.2f}" in text
+    cut = comparison.summary(max_rows=1)
+    assert "best 1 shown" in cut and rows[1]["model"] + " " not in cut.split("\n\n")[1]
+    assert "<table>" in comparison._repr_html_()
+
+
+def test_bad_candidates_and_options_name_the_argument():
+    scan = Experiment("threshold+dark", {"efficiency": 0.4, "dark_probability": 1e-3}, COHERENT,
+                      shots=1_000).scan(np.random.default_rng(1))
+    with pytest.raises(ArgumentError, match="^candidates"):
+        compare_models(scan, ["threshold+glitter"])
+    with pytest.raises(ArgumentError, match="^cv_folds"):
+        compare_models(scan, ["threshold"], cv_folds=-2)

@@ -11,6 +11,7 @@ import json
 import numpy as np
 import pytest
 
+from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.cross_check import cross_check
 from povmfit.fitting.tomography.pointwise_wigner import pointwise_wigner
 from povmfit.fitting.tomography.reconstruct import reconstruct_povm
@@ -31,8 +32,8 @@ def simulated():
     theta = np.asarray(model.povm(model.pack(TRUTH), n_photons))
     q = np.clip(np.asarray(probe_distributions(coherent, thermal, n_photons)) @ theta.T, 0, None)
     counts = np.random.default_rng(21).multinomial(20_000, q / q.sum(axis=1, keepdims=True))
-    rec = reconstruct_povm(coherent, thermal, counts, grid=[1e-5, 1e-3, 1e-1], folds=3, bootstrap=25, seed=1, quiet=True)
-    pointwise = pointwise_wigner(coherent, thermal, counts, bootstrap=25, seed=1, quiet=True)
+    rec = reconstruct_povm(coherent, thermal, counts, grid=[1e-5, 1e-3, 1e-1], folds=3, bootstrap=25, seed=1)
+    pointwise = pointwise_wigner(coherent, thermal, counts, bootstrap=25, seed=1)
     return coherent, thermal, model, rec, pointwise
 
 
@@ -64,3 +65,11 @@ def test_model_errors_enter_in_quadrature(simulated):
     wide = cross_check(theta, large, rec, None)
     assert wide["povm"]["max_abs_z"] < narrow["povm"]["max_abs_z"] / 10  # sqrt(1 + se^2) >= 1 > 10 se
     assert wide["wigner"] is None and wide["verdict"] == "consistent"
+
+
+def test_wigner_comparison_needs_the_probes(simulated):
+    # Source: common practice, no source (a missing argument is named in the error).
+    _, _, model, rec, pointwise = simulated
+    theta = np.asarray(model.povm(model.pack(TRUTH), rec.n_photons))
+    with pytest.raises(ArgumentError, match="^probes: "):
+        cross_check(theta, None, rec, pointwise)

@@ -232,7 +232,7 @@ def test_ensemble_probabilities_are_member_means_and_runs_use_one_member():
 
 def test_simulated_scan_fed_to_the_fitter_recovers_the_detector():
     # Monte Carlo round trip: truth within 3 standard errors for every parameter (fixed seed)
-    from povmfit.fitting.cli.simulate import parse_probe_grid, simulate_counts
+    from povmfit.fitting.emulation.simulate import parse_probe_grid, simulate_counts
     from povmfit.fitting.inference.fit import fit_scan
     from povmfit.fitting.data.scan import scan_from_arrays
 

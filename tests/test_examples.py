@@ -60,3 +60,12 @@ def test_heralded_source_ensemble_and_monte_carlo_agree():
     assert abs(sampled_rate - exact_rate) < 3.4e-3
     # g2 rests on the ~800 heralds with two or more photons: relative sd ~ 1/sqrt(800) ~ 3.5 %; allow 4 sd
     assert sampled_g2 == pytest.approx(exact_g2, rel=0.14)
+
+
+def test_walkthrough_runs_every_cell_and_recovers_the_demo_device():
+    out = run_example("walkthrough.py")
+    value, stderr = (float(v) for v in re.search(r"efficiency (\d\.\d+) ± (\d\.\d+) \(statistical only\)", out).groups())
+    # the bundled scan simulates efficiency 0.62 (fitting/data/demo.py); shot noise only, 4 sigma
+    assert abs(value - 0.62) < 4 * stderr
+    assert "cross-check" in out and "outcome counts for coherent:2.0" in out
+    assert "datasheet.json" in out and "report.html" in out

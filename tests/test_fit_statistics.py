@@ -202,7 +202,7 @@ def test_bootstrap_stderr_agrees_with_fisher(threshold_dark):
     scan = threshold_dark.scan(np.random.default_rng(61))
     result = fit_scan(scan, threshold_dark.model)
     resamples = 400
-    boot = parametric_bootstrap(scan, result, resamples, seed=62, quiet=True)
+    boot = parametric_bootstrap(scan, result, resamples, seed=62)
     # the sd of B resamples has relative sd 1/sqrt(2B) = 3.5 % at B=400: 15 % is 4.2 sigma
     # (false failure ~3e-5); the Fisher stderr is the large-sample sd of the same estimator
     for n in threshold_dark.truth:

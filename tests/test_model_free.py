@@ -1,15 +1,27 @@
-"""The model-free reconstructions give the same numbers whichever process computes them."""
+"""The model-free reconstructions give the same numbers whichever process computes them, and
+the reconstruct verb's entry point is built from the very parts the whole job runs."""
+import multiprocessing
+import pickle
 import subprocess
 import sys
+from concurrent.futures import ProcessPoolExecutor
+from importlib import resources
+from pathlib import Path
 
 import numpy as np
 import pytest
 
-from povmfit.fitting.cli.demo import demo_scan_path
-from povmfit.fitting.tomography.model_free import (
-    ModelFreeJob, model_free_reconstructions, reconstructions_under_model, start_model_free,
-)
 from povmfit.fitting.data.scan import load_scan
+from povmfit.fitting.tomography.model_free import (
+    RECONSTRUCTION_BOOTSTRAP, povm_reconstruction, reconstruct_scan, reconstructions_under_model,
+    wigner_reconstructions,
+)
+
+SEED, BOOTSTRAP = 3, 5
+
+
+def demo_scan_path() -> Path:
+    return Path(str(resources.files("povmfit.fitting.data") / "demo_scan.csv"))
 
 
 @pytest.fixture(scope="module")
@@ -17,53 +29,66 @@ def scan():
     return load_scan(demo_scan_path())
 
 
-def _assert_same(a, b):
-    np.testing.assert_array_equal(a["reconstruction"].theta, b["reconstruction"].theta)
-    np.testing.assert_array_equal(a["reconstruction"].stderr, b["reconstruction"].stderr)
-    np.testing.assert_array_equal(a["pointwise"].values, b["pointwise"].values)
+@pytest.fixture(scope="module")
+def here(scan):
+    """The reconstructions computed in this process."""
+    reconstruction = povm_reconstruction(scan, SEED, BOOTSTRAP)
+    return reconstruction, wigner_reconstructions(scan, SEED, BOOTSTRAP)
+
+
+def _assert_same_wigner(a, b):
+    for name in ("values", "stderr", "p", "replicate_values"):
+        np.testing.assert_array_equal(getattr(a["pointwise"], name), getattr(b["pointwise"], name))
     np.testing.assert_array_equal(a["smoothed"].values, b["smoothed"].values)
+    np.testing.assert_array_equal(a["smoothed"].stderr, b["smoothed"].stderr)
     assert a["phase_test"] is None and b["phase_test"] is None  # the demo scan has no phases
 
 
-def test_helper_process_matches_in_process_computation(scan):
+def test_a_spawned_worker_computes_the_same_numbers(scan, here):
     # Source: the in-process computation with the same seeds (common practice, no source).
-    job = start_model_free(demo_scan_path(), seed=3, bootstrap=5)
-    try:
-        q = scan.counts / scan.shots[:, None]  # a model: the observed frequencies themselves
-        from_helper = job.result(scan, q)
-        assert job._process is not None, "the helper process did not deliver"
-        here = model_free_reconstructions(scan, seed=3, bootstrap=5)
-        _assert_same(from_helper, here)
-        helper_mean, helper_spread = job.under_model(scan, q, here["reconstruction"])
-        assert job._process is not None, "the helper did not answer; the values were computed here"
-    finally:
-        job.cancel()
-    mean, spread = reconstructions_under_model(scan, q, here["reconstruction"], seed=3)
-    np.testing.assert_array_equal(helper_mean, mean)
-    np.testing.assert_array_equal(helper_spread, spread)
+    reconstruction, wigner = here
+    q = scan.counts / scan.shots[:, None]  # a model: the observed frequencies themselves
+    context = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(max_workers=1, mp_context=context) as pool:
+        povm_future = pool.submit(povm_reconstruction, scan, SEED, BOOTSTRAP)
+        wigner_future = pool.submit(wigner_reconstructions, scan, SEED, BOOTSTRAP)
+        remote = povm_future.result()
+        under_model_future = pool.submit(reconstructions_under_model, scan, q, remote, SEED)
+        remote_wigner = wigner_future.result()
+        remote_mean, remote_spread = under_model_future.result()
+    for name in ("theta", "stderr", "cv_scores", "regularisation_grid", "probe_weight", "constrained"):
+        np.testing.assert_array_equal(getattr(remote, name), getattr(reconstruction, name))
+    assert (remote.regularisation, remote.iterations, remote.converged) == (
+        reconstruction.regularisation, reconstruction.iterations, reconstruction.converged)
+    _assert_same_wigner(remote_wigner, wigner)
+    mean, spread = reconstructions_under_model(scan, q, reconstruction, SEED)
+    np.testing.assert_array_equal(remote_mean, mean)
+    np.testing.assert_array_equal(remote_spread, spread)
 
 
-def test_results_for_another_file_are_not_used(scan, tmp_path):
-    other = tmp_path / "other.csv"
-    other.write_text(demo_scan_path().read_text().replace("\n", "\r\n"))  # same numbers, other bytes
-    job = start_model_free(other, seed=3, bootstrap=5)
-    try:
-        assert job._collect(scan.sha256) is None
-    finally:
-        job.cancel()
+def test_reconstruct_scan_is_the_whole_jobs_parts(scan, here):
+    # Source: the parts the whole job runs (povm_reconstruction, wigner_reconstructions) with
+    # the same seed and resamples (common practice, no source).
+    reconstruction, wigner = here
+    result = reconstruct_scan(scan, bootstrap=BOOTSTRAP, seed=SEED)
+    np.testing.assert_array_equal(result.reconstruction.theta, reconstruction.theta)
+    np.testing.assert_array_equal(result.reconstruction.stderr, reconstruction.stderr)
+    _assert_same_wigner({"pointwise": result.pointwise, "smoothed": result.smoothed, "phase_test": result.phase_test},
+                        wigner)
+    assert result.pointwise.method == "box" and result.smoothed.saturation <= result.pointwise.saturation
+    assert (result.source, result.sha256) == (scan.source, scan.sha256)
+    copy = pickle.loads(pickle.dumps(result))  # picklable, to come back from a worker whole
+    np.testing.assert_array_equal(copy.reconstruction.theta, result.reconstruction.theta)
 
 
-def test_failed_helper_falls_back_to_this_process(scan):
-    failing = subprocess.Popen([sys.executable, "-c", "import sys; sys.exit(1)"], stdout=subprocess.PIPE)
-    parts = ModelFreeJob(failing, seed=3, bootstrap=5).result(scan)
-    _assert_same(parts, model_free_reconstructions(scan, seed=3, bootstrap=5))
+def test_defaults_are_the_whole_jobs():
+    # Source: common practice, no source (one estimator, one default, in both verbs).
+    import inspect
 
-
-def test_cancel_stops_the_helper():
-    job = start_model_free(demo_scan_path(), seed=0)
-    process = job._process
-    job.cancel()
-    assert process.poll() is not None
+    defaults = inspect.signature(reconstruct_scan).parameters
+    assert defaults["bootstrap"].default == RECONSTRUCTION_BOOTSTRAP == 50
+    assert inspect.signature(povm_reconstruction).parameters["bootstrap"].default == RECONSTRUCTION_BOOTSTRAP
+    assert inspect.signature(wigner_reconstructions).parameters["bootstrap"].default == RECONSTRUCTION_BOOTSTRAP
 
 
 @pytest.mark.parametrize("order", ["import povmfit, jax", "import jax, povmfit"])
@@ -72,3 +97,11 @@ def test_importing_povmfit_switches_jax_to_float64(order):
     code = f"{order}; import jax.numpy as jnp; print(jnp.ones(1).dtype)"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "float64"
+
+
+def test_the_worker_entry_module_does_not_load_jax():
+    # Source: common practice, no source (a spawned worker imports only what it runs).
+    code = ("import sys, povmfit.fitting.tomography.model_free; "
+            "print(sorted(m for m in ('jax', 'scipy', 'pandas') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "[]"

@@ -8,7 +8,9 @@ import pytest
 
 from scipy import optimize
 
+from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.pointwise_wigner import (
+    BOOTSTRAP_TASK,
     box_least_squares,
     phase_insensitivity_test,
     pointwise_wigner,
@@ -99,7 +101,7 @@ def test_lossy_closed_form_within_bootstrap_errors():
     coherent, thermal = grid(np.linspace(0.0, 2.0, 9), [0.0, 0.2, 0.5, 1.0, 1.5, 2.0])
     q = model_probabilities("threshold", {"efficiency": eta}, coherent, thermal)
     counts = np.random.default_rng(0).multinomial(20_000, q)
-    result = pointwise_wigner(coherent, thermal, counts, bootstrap=20, seed=1, quiet=True)
+    result = pointwise_wigner(coherent, thermal, counts, bootstrap=20, seed=1)
     z = (result.values[0] - lossy_no_click(result.alpha, eta)) / result.stderr[0]
     # shot noise (20,000 shots per probe) dominates the saturation bias here; |z| < 3.5 for
     # 9 points is a 0.4% false-alarm rate at most (Bonferroni)
@@ -114,7 +116,7 @@ def test_outcome_values_add_up_to_one_over_pi():
     coherent, thermal = grid(np.linspace(0.0, 3.0, 6), [0.0, 0.3, 0.8, 1.5])
     q = model_probabilities("array:4+dark", {"efficiency": 0.6, "dark_probability": 0.02}, coherent, thermal)
     counts = np.random.default_rng(4).multinomial(5_000, q)
-    result = pointwise_wigner(coherent, thermal, counts, bootstrap=3, seed=2, quiet=True)
+    result = pointwise_wigner(coherent, thermal, counts, bootstrap=3, seed=2)
     # completeness: sum_k Pi_k = 1 has W = 1/pi everywhere (DESIGN section 2); the simplex
     # constraint keeps it exact even where the bounds are active
     np.testing.assert_allclose(result.values.sum(axis=0), 1 / math.pi, atol=1e-9)
@@ -152,3 +154,23 @@ def test_phase_test_accepts_an_insensitive_detector_and_rejects_a_sensitive_one(
     coherent, thermal, counts, phase = _phase_scan(False, seed=7)
     result = pointwise_wigner(coherent, thermal, counts, phase, bootstrap=0)
     assert result.alpha.size == 8 and np.any(np.abs(result.alpha.imag) > 0.1)  # off the real axis
+
+
+def test_progress_callback_and_typed_errors(capsys):
+    # Source: common practice, no source (progress through a callback; errors name the argument).
+    coherent, thermal = grid([0.0, 0.5, 1.0], [0.0, 0.3, 0.8])
+    q = model_probabilities("threshold", {"efficiency": 0.6}, coherent, thermal)
+    counts = np.random.default_rng(5).multinomial(5_000, q)
+    calls = []
+    result = pointwise_wigner(coherent, thermal, counts, method="box", bootstrap=4, seed=3,
+                              progress=lambda *call: calls.append(call))
+    assert calls == [(BOOTSTRAP_TASK, i, 3) for i in (1, 2, 3)]  # one step per displacement
+    assert capsys.readouterr() == ("", "")
+    silent = pointwise_wigner(coherent, thermal, counts, method="box", bootstrap=4, seed=3)
+    np.testing.assert_array_equal(silent.stderr, result.stderr)  # the callback draws no random numbers
+    with pytest.raises(ArgumentError, match="^method: "):
+        pointwise_wigner(coherent, thermal, counts, method="simplex-ish")
+    with pytest.raises(ArgumentError, match="^saturation: "):
+        pointwise_wigner(coherent, thermal, counts, saturation=0)
+    with pytest.raises(ArgumentError, match="^saturation: "):
+        smoothed_wigner(result, saturation=0)

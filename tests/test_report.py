@@ -48,25 +48,27 @@ def report_inputs(scan_path):
     """The arguments of write_report built from the committed stages (no pipeline)."""
     from povmfit.fitting.inference.compare import compare_models
     from povmfit.fitting.outputs.datasheet import datasheet_document
-    from povmfit.fitting.workflow.characterise import model_povm_with_errors
     from povmfit.fitting.tomography.reconstruct import reconstruct_povm
     from povmfit.fitting.data.scan import load_scan
 
     scan = load_scan(scan_path)
     comparison = compare_models(scan, ["array:4", "array:4+dark"], cv_folds=0)
     result = comparison.fits[comparison.chosen.spec]
-    recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4], quiet=True)
-    theta, se = model_povm_with_errors(result, recon.n_photons)
+    recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4])
+    from povmfit.fitting.outputs.report import curve_cutoff
+
+    wide, se = result.povm_with_errors(max(recon.n_photons, curve_cutoff(scan, result)))
+    theta, se = wide[:, : recon.n_photons], se[:, : recon.n_photons]
     summary = {"verdict": "test verdict <b>not bold</b>",
                "povm": {"max_abs_z": 1.5, "agrees": True, "z": [[0.5] * 5] * 3}}
     sheet = datasheet_document(scan, result, options={"model": "auto", "note": "<script>alert(1)</script>"},
-                               comparison=comparison.to_dict(), verdict=comparison.verdict, cross_check=summary)
+                               comparison=comparison.rows(), verdict=comparison.verdict, cross_check=summary)
     from povmfit.fitting.tomography.pointwise_wigner import pointwise_wigner, smoothed_wigner
 
     pointwise = pointwise_wigner(scan.coherent_photons, scan.thermal_photons, scan.counts, scan.phase_rad,
-                                 bootstrap=10, seed=0, quiet=True)
+                                 bootstrap=10, seed=0)
     cross = {"summary": summary, "reconstruction": recon, "pointwise": pointwise, "smoothed": smoothed_wigner(pointwise),
-             "model_theta": theta, "model_stderr": se}
+             "model_theta": theta, "model_stderr": se, "curve_theta": wide}
     return scan, result, sheet, comparison, cross
 
 
@@ -127,25 +129,26 @@ def test_standardised_residuals_and_wilson_interval():
     assert lo == 0.0 and hi == pytest.approx(1 / 101)
 
 
-def test_model_curves_from_the_fitted_povm_match_the_compiled_model(direct_inputs, monkeypatch):
+def test_model_curves_from_the_fitted_povm_match_the_jax_model(direct_inputs):
+    from povmfit.fitting.inference.objective import predicted_probabilities
     from povmfit.fitting.outputs import report
 
     _, (scan, result, _, _, _) = direct_inputs
-    reference = report.model_curves(scan, result)  # the compiled JAX model on the curve grid
     theta = np.asarray(result.model.povm(result.parameter_vector, 200))  # well above any cutoff here
-
-    def refuse(*args, **kwargs):
-        raise AssertionError("the curves should come from the given POVM, not from the compiled model")
-
-    monkeypatch.setattr(report, "compiled", refuse)
     curves = report.model_curves(scan, result, theta)
-    assert [c["level"] for c in curves] == [c["level"] for c in reference]
-    for mine, theirs in zip(curves, reference):
-        np.testing.assert_allclose(mine["mean_photons"], theirs["mean_photons"])
+    assert report.curve_cutoff(scan, result) <= 200
+    for curve in curves:
+        level = float(np.unique(scan.thermal_photons)[curve["level"]])
+        coherent = curve["mean_photons"] - level
+        n = 200
+        reference = np.asarray(predicted_probabilities(result.model, result.parameter_vector, 1.0, coherent,
+                                                       np.full_like(coherent, level), n))
         # same probabilities by two routes: numpy P @ theta.T (probe windows trimmed at 1e-12
-        # of mass) against the compiled model (independent computation)
-        np.testing.assert_allclose(mine["probability"], theirs["probability"], rtol=0, atol=1e-10)
-        np.testing.assert_allclose(mine["probability"].sum(axis=1), 1.0, atol=1e-9)  # columns of a POVM sum to 1
+        # of mass) against the JAX model's own probe distributions (independent computation)
+        np.testing.assert_allclose(curve["probability"], reference, rtol=0, atol=1e-10)
+        np.testing.assert_allclose(curve["probability"].sum(axis=1), 1.0, atol=1e-9)  # columns of a POVM sum to 1
+    with pytest.raises(ValueError, match="covers 3 photon numbers"):
+        report.model_curves(scan, result, theta[:, :3])
 
 
 def test_symmetric_log_axis_and_ticks_by_hand():

@@ -3,11 +3,10 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 from pathlib import Path
 
-
 from povmfit.fitting.data.files import json_safe
-from povmfit.fitting.tomography.model_free import ranking_request, start_model_free
 from povmfit.fitting.data.errors import ArgumentError
 
 EPILOG = """examples:
@@ -47,6 +46,8 @@ def add_fit_arguments(parser, scan_required: bool = True):
                         help="residual weighting (deviance = maximum likelihood)")
     parser.add_argument("--bootstrap", type=int, default=0, metavar="N", help="parametric bootstrap resamples")
     parser.add_argument("--seed", type=int, default=0, help="seed for bootstrap and cross-validation")
+    parser.add_argument("--jobs", type=int, default=2, metavar="N",
+                        help="processes (default 2: the model-free POVM beside the model ranking; 1: one process)")
     parser.add_argument("--out", default=None, help="output folder (default: SCAN_STEM.povmfit/)")
     parser.add_argument("--no-report", action="store_true", help="skip report.html and the plots")
     parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
@@ -54,54 +55,60 @@ def add_fit_arguments(parser, scan_required: bool = True):
 
 
 def validate_options(args):
-    if args.calibration_uncertainty is not None and not 0 < args.calibration_uncertainty < 0.5:
-        raise ArgumentError(f"--calibration-uncertainty: expected a relative width between 0 and 0.5, got {args.calibration_uncertainty}")
+    if args.calibration_uncertainty is not None and not 0 <= args.calibration_uncertainty < 0.5:
+        raise ArgumentError(f"--calibration-uncertainty: expected a relative width from 0 (exact probes) to below 0.5, "
+                            f"got {args.calibration_uncertainty}")
     if args.gate_duration is not None and not args.gate_duration > 0:
         raise ArgumentError(f"--gate-duration: expected a positive number of seconds, got {args.gate_duration}")
     if args.bootstrap < 0:
         raise ArgumentError(f"--bootstrap: expected a non-negative number of resamples, got {args.bootstrap}")
+    if args.seed < 0:
+        raise ArgumentError(f"--seed: expected a whole number >= 0, got {args.seed}")
+    if args.jobs < 1 and args.jobs != -1:
+        raise ArgumentError(f"--jobs: expected a positive number of processes or -1 (all cores), got {args.jobs}")
+    if args.candidates and args.model != "auto":
+        raise ArgumentError("--candidates is only used with --model auto")
 
 
 def run(args) -> int:
     validate_options(args)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
-    # on the second core, before the heavy imports
-    model_free = start_model_free(args.scan, args.seed, ranking=ranking_request(args))
-    try:
-        outcome = run_fit_command(args.scan, out_dir, args, model_free)
-    finally:
-        model_free.cancel()
-    print_summary(outcome, args)
+    result = characterise_for_cli(args.scan, args)
+    files = result.write(out_dir, report=not args.no_report)
+    print_summary(result, files, args)
     return 0
 
 
-def run_fit_command(scan_path, out_dir, args, model_free):
-    """Load the scan, load the compiled programs in the background while the fitting libraries
-    are imported, then run the pipeline."""
-    from povmfit.fitting.inference.candidates import programs_needed
-    from povmfit.fitting.inference.objective import load_programs_in_background
-    from povmfit.fitting.data.scan import load_scan
+def characterise_for_cli(scan, args):
+    """The whole job with the command line's options; warnings of the fit become one line each."""
+    import warnings
 
-    scan = load_scan(scan_path)
-    # the modules that receive the helper's reconstructions come after the programs: their
-    # imports fill the gaps the ranking leaves while JAX computes
-    load_programs_in_background(scan, programs_needed(scan, args.model, args.candidates), args.calibration_uncertainty,
-                                then_import=("povmfit.fitting.tomography.reconstruct", "povmfit.fitting.tomography.pointwise_wigner",
-                                             "povmfit.fitting.tomography.cross_check", "povmfit.fitting.outputs.report"))
-    from povmfit.fitting.workflow.characterise import run_fit_pipeline
+    from povmfit.fitting.outputs.terminal import TerminalProgress
+    from povmfit.fitting.workflow.characterise import characterise
 
-    return run_fit_pipeline(scan_path, out_dir, args, model_free, scan=scan)
+    progress = None if args.quiet or args.json else TerminalProgress()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", UserWarning)
+        result = characterise(
+            scan, args.model, candidates=args.candidates, calibration_uncertainty=args.calibration_uncertainty,
+            gate_duration=args.gate_duration, weighting=args.weighting, bootstrap=args.bootstrap, seed=args.seed,
+            n_jobs=args.jobs, progress=progress,
+        )
+    for warning in caught:
+        if issubclass(warning.category, UserWarning) and warning.category.__module__.startswith("povmfit"):
+            print(f"povmfit: warning: {warning.message}", file=sys.stderr)
+    return result
 
 
-def print_summary(outcome, args) -> None:
-    sheet = outcome["datasheet"]
+def print_summary(result, files, args) -> None:
+    sheet = result.datasheet()
     if args.json:
         summary = {
             "model": sheet["model"],
             "verdict": sheet["verdict"],
             "figures": sheet["figures"],
             "goodness_of_fit": {k: sheet["goodness_of_fit"][k] for k in ("deviance", "dof", "p_value")},
-            "outputs": {k: str(v) for k, v in outcome["files"].items()},
+            "outputs": {k: str(v) for k, v in files.items()},
         }
         print(json.dumps(json_safe(summary), indent=2))
         return
@@ -109,5 +116,4 @@ def print_summary(outcome, args) -> None:
         return
     from povmfit.fitting.outputs.terminal import format_summary
 
-    print(format_summary(sheet, outcome["files"]))
-
+    print(format_summary(sheet, files))

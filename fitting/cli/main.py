@@ -1,15 +1,15 @@
 """The ``povmfit`` command line.
 
-Each verb lives in its own module ``povmfit.fitting.cmd_<verb>`` exposing
+Each verb lives in its own module ``povmfit.fitting.cli.<verb>`` exposing
 ``register(subparsers)`` (adds its parser, with ``--help`` text and an example) and
-``run(args) -> int``. Bad input raises :class:`PovmfitError`; it is printed as one line on
-stderr and the exit code is 2.
+``run(args) -> int``; a verb turns options into keyword arguments of a library function.
+The library's typed errors (:class:`PovmfitError` and subclasses) are printed as one line
+on stderr and the exit code is 2.
 """
 from __future__ import annotations
 
 import argparse
 import importlib
-import os
 import sys
 
 import povmfit
@@ -32,8 +32,6 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-
-
 def main(argv=None) -> int:
     parser = build_parser()
     try:
@@ -54,18 +52,8 @@ def main(argv=None) -> int:
 
 
 def entry() -> None:
-    """Console entry point: run :func:`main` and leave at once.
-
-    Every output is written and closed by then; skipping the interpreter's teardown (module
-    and JAX runtime clean-up, about 0.5 s) is what makes the leaving immediate.
-    """
-    code = main()
-    for stream in (sys.stdout, sys.stderr):
-        try:
-            stream.flush()
-        except OSError:  # e.g. a reader that closed the pipe early
-            pass
-    os._exit(code)
+    """Console entry point."""
+    sys.exit(main())
 
 
 if __name__ == "__main__":

@@ -139,6 +139,28 @@ class Scan:
             columns[f"count_{k}"] = self.counts[:, k].astype(np.int64)
         return pd.DataFrame(columns)
 
+    to_dataframe = to_frame
+
+    def to_dict(self) -> dict:
+        """Plain JSON-able data (lists and numbers) in the wide layout, plus source and SHA-256."""
+        return {"source": self.source, "sha256": self.sha256, **self.to_frame().to_dict(orient="list")}
+
+    def summary(self) -> str:
+        """One paragraph: source, probes, outcomes, shots and the probed photon-number ranges."""
+        total = int(self.shots.sum())
+        return (f"scan {self.source}: {self.n_probes} probes, outcomes 0..{self.max_outcome}, {total:,} shots; "
+                f"coherent photons {self.coherent_photons.min():.3g}..{self.coherent_photons.max():.3g}, "
+                f"thermal photons {self.thermal_photons.min():.3g}..{self.thermal_photons.max():.3g}"
+                + (f"; SHA-256 {self.sha256[:12]}..." if self.sha256 else ""))
+
+    def __repr__(self) -> str:
+        return f"<Scan {self.source}: {self.n_probes} probes x {self.n_outcomes} outcomes>"
+
+    def _repr_html_(self) -> str:
+        from povmfit.fitting.display import html_block
+
+        return html_block("Scan", [self.summary()]) + self.to_frame().head(20).to_html(index=False)
+
 
 def _frozen(array: np.ndarray) -> np.ndarray:
     array = np.array(array, copy=True)

@@ -24,7 +24,6 @@ none is adequate, and the verdict says so).
 from __future__ import annotations
 
 import math
-import sys
 import warnings
 from dataclasses import dataclass
 
@@ -34,9 +33,11 @@ from scipy.special import chdtrc
 from povmfit.models import DetectorModel, parse_model_spec
 
 from povmfit.fitting.inference.candidates import candidate_models, family_compute_model, ranking_order
+from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
+from povmfit.fitting.display import format_number, html_block, html_table, text_table
 from povmfit.fitting.inference.fit import FitNotConverged, FitResult, fit_scan
 from povmfit.fitting.inference.objective import cell_residuals
-from povmfit.fitting.data.errors import NotIdentifiable
+from povmfit.fitting.inference.result import jsonable
 
 __all__ = ["candidate_models", "compare_models", "Comparison", "ADEQUACY_LEVEL"]
 
@@ -47,26 +48,103 @@ LRT_LEVEL = 0.05
 
 @dataclass(frozen=True)
 class Comparison:
-    """Result of ``compare_models``.
+    """Result of ``compare_models``: every candidate fitted and ranked.
+
+    Frozen: no field can be reassigned (the rows are plain dicts, shared with the fits'
+    readers; treat them as read-only).
 
     Attributes:
-        table: one dict per candidate, best first (model, parameters, deviance, dof, p_value,
-            adequate, aic, bic, delta_aic, delta_bic, weight, cv_deviance, converged).
-        tests: likelihood-ratio tests between nested candidates (dicts).
-        chosen: the chosen DetectorModel; fits: {spec: FitResult}.
+        table: tuple of one dict per fitted candidate, best first (adequate candidates by
+            BIC, then the inadequate ones by BIC). Keys: ``model`` (spec), ``parameters``
+            (k), ``deviance``, ``dof``, ``p_value`` (goodness of fit), ``adequate``
+            (p >= ADEQUACY_LEVEL), ``aic``, ``bic``, ``delta_aic``, ``delta_bic`` (to the
+            lowest of all candidates), ``weight`` (Akaike weight), ``cv_deviance`` (held-out
+            deviance, None where not computed), ``converged``.
+        tests: tuple of likelihood-ratio tests between nested candidates, one dict each:
+            ``null``, ``alternative``, ``feature``, ``statistic``, ``reference`` (the null
+            distribution), ``p_value``, ``feature_needed`` (p < LRT_LEVEL).
+        chosen: the chosen DetectorModel (first row of ``table``).
+        fits: {spec: FitResult} of every fitted candidate (Wald intervals, ranking tolerance).
         verdict: one sentence for the datasheet and the terminal.
         skipped: {spec: reason} for candidates the scan cannot identify.
     """
 
-    table: list
-    tests: list
+    table: tuple
+    tests: tuple
     chosen: DetectorModel
     fits: dict
     verdict: str
     skipped: dict
 
-    def to_dict(self) -> list:
+    def __post_init__(self):
+        object.__setattr__(self, "table", tuple(self.table))
+        object.__setattr__(self, "tests", tuple(self.tests))
+
+    def rows(self) -> list:
+        """The ranking as a list of plain dicts, best first (the datasheet's
+        ``model_comparison``)."""
         return [dict(row) for row in self.table]
+
+    def to_dict(self) -> dict:
+        """JSON-able: ``candidates`` (:meth:`rows`), ``likelihood_ratio_tests``, ``chosen``
+        (spec), ``verdict`` and ``skipped`` (the fits themselves are left out)."""
+        return jsonable({
+            "candidates": self.rows(),
+            "likelihood_ratio_tests": [dict(t) for t in self.tests],
+            "chosen": self.chosen.spec,
+            "verdict": self.verdict,
+            "skipped": dict(self.skipped),
+        })
+
+    def to_dataframe(self):
+        """pandas DataFrame of :meth:`rows`, one row per candidate (index ``model``), best first."""
+        import pandas as pd
+
+        return pd.DataFrame(self.rows()).set_index("model")
+
+    def summary(self, max_rows: int = 12) -> str:
+        """Plain-text ranking: model, k, deviance, dof, p, dBIC, dAIC, Akaike weight and
+        held-out deviance of the best ``max_rows`` candidates, then the verdict."""
+        header, rows = self._table(max_rows)
+        return "\n".join([self._title(max_rows), "", text_table(header, rows), ""] + self._notes())
+
+    def _repr_html_(self) -> str:
+        return html_block(self._title(12), self._notes(), [html_table(*self._table(12))])
+
+    def _title(self, max_rows: int) -> str:
+        shown = min(max_rows, len(self.table))
+        cut = f", best {shown} shown" if shown < len(self.table) else ""
+        return f"Model ranking: {len(self.table)} candidates fitted{cut}; chosen {self.chosen.spec}"
+
+    def _table(self, max_rows: int):
+        header = ["model", "k", "deviance", "dof", "p", "dBIC", "dAIC", "weight", "cv"]
+        rows = [[
+            row["model"], row["parameters"], f"{row['deviance']:.2f}", row["dof"], format_number(row["p_value"], 3),
+            f"{row['delta_bic']:.2f}", f"{row['delta_aic']:.2f}", format_number(row["weight"], 3),
+            "" if row["cv_deviance"] is None else f"{row['cv_deviance']:.2f}",
+        ] for row in self.table[:max_rows]]
+        return header, rows
+
+    def _notes(self) -> list[str]:
+        notes = []
+        unconverged = [r["model"] for r in self.table if not r["converged"]]
+        if unconverged:
+            notes.append(f"optimiser not converged: {', '.join(unconverged)}")
+        notes.append(f"p: goodness of fit (candidates with p < {ADEQUACY_LEVEL} are inadequate); "
+                     "dBIC, dAIC: to the lowest; weight: Akaike weight; cv: held-out-probe deviance")
+        if self.skipped:
+            notes.append(f"skipped (not identifiable from this scan): {', '.join(self.skipped)}")
+        notes.append(self.verdict)
+        return notes
+
+
+def _candidate(candidate) -> DetectorModel:
+    if isinstance(candidate, DetectorModel):
+        return candidate
+    try:
+        return parse_model_spec(candidate)
+    except (ValueError, TypeError) as error:
+        raise ArgumentError(f"candidates: {candidate!r}: {error}") from None
 
 
 def _lrt(small: FitResult, big: FitResult, added: str) -> dict:
@@ -129,28 +207,45 @@ def compare_models(
     cv_folds: int = 5,
     cv_top: int = 3,
     seed: int = 0,
-    quiet: bool = True,
+    progress=None,
 ) -> Comparison:
-    """Fit every candidate (default: ``candidate_models(scan.n_outcomes)``) and rank them."""
+    """Fit every candidate and rank them (see the module docstring).
+
+    Args:
+        scan: a validated Scan.
+        candidates: DetectorModels or spec strings (default: ``candidate_models(scan.n_outcomes)``).
+        calibration_uncertainty: relative 1-sigma probe calibration width, or None.
+        cv_folds: folds of the held-out-probe cross-validation (0: none).
+        cv_top: at most this many leading candidates are cross-validated.
+        seed: seed of the fold assignment.
+        progress: optional ``progress(task, done, total)`` called with task "model ranking"
+            before the first fit and after each; nothing is printed.
+
+    Raises:
+        ArgumentError: a candidate spec or an option is invalid (the message names it).
+        NotIdentifiable: the scan identifies none of the candidates.
+    """
+    for name, value in (("cv_folds", cv_folds), ("cv_top", cv_top)):
+        if isinstance(value, bool) or int(value) != value or value < 0 or (name == "cv_folds" and value == 1):
+            raise ArgumentError(f"{name}: expected 0 or a whole number >= {2 if name == 'cv_folds' else 1}, got {value!r}")
     if candidates is None:
         candidates = candidate_models(scan.n_outcomes)
-    candidates = [parse_model_spec(c) if isinstance(c, str) else c for c in candidates]
+    candidates = [_candidate(c) for c in candidates]
     if not candidates:
         raise NotIdentifiable(f"{scan.source}: no candidate model fits a scan with {scan.n_outcomes} outcomes")
     fits, skipped = {}, {}
-    show = not quiet and sys.stderr.isatty()
     ordered = ranking_order(candidates)
+    if progress is not None:
+        progress("model ranking", 0, len(ordered))
     for i, model in enumerate(ordered):
-        if show:
-            print(f"\rranking models {i + 1}/{len(ordered)}: {model.spec:<50}", end="", file=sys.stderr, flush=True)
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FitNotConverged)
                 fits[model.spec] = _fit_with_nested_start(scan, model, fits, calibration_uncertainty)
         except NotIdentifiable as error:
             skipped[model.spec] = str(error)
-    if show:
-        print(file=sys.stderr)
+        if progress is not None:
+            progress("model ranking", i + 1, len(ordered))
     if not fits:
         raise NotIdentifiable(next(iter(skipped.values())))
 

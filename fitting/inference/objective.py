@@ -12,22 +12,26 @@ so sum r^2 is the deviance and least squares on r is maximum likelihood. The Pea
 uses r = (o - e)/sqrt(e). With a calibration prior one more residual (s - 1)/sigma is
 appended (a Gaussian prior on the probe scale s).
 
-Every function here is compiled once per (model, scan shape, cutoff) and takes the data as
-arguments, so refits (bootstrap, profiles, cross-validation) reuse the compiled code.
+``FitProblem`` holds the one residual function (and its exact Jacobian and the Fisher
+information) of a model on a scan; the fit, its profile-likelihood intervals and its
+bootstrap refits all minimise it through ``solver.solve``. The compiled JAX parts are cached
+per (model, cutoff) and take the data as arguments, so refits (bootstrap, profiles,
+cross-validation) reuse the compiled code.
 """
 from __future__ import annotations
 
+import copy
 from functools import lru_cache
 
 import jax
-import jax.numpy as jnp
 import numpy as np
 
-from povmfit.models import DetectorModel, choose_cutoff, probe_distributions, probe_distributions_numpy
+from povmfit.fitting.data.errors import ArgumentError
+from povmfit.models import DetectorModel, choose_cutoff, null_value, probe_distributions, probe_distributions_numpy
 
 __all__ = [
     "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
-    "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative",
+    "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative", "FitProblem",
 ]
 
 PROBABILITY_FLOOR = 1e-300
@@ -60,65 +64,20 @@ def predicted_probabilities(model: DetectorModel, params, scale, coherent, therm
     return distributions @ theta.T
 
 
-def _deviance_residuals(q, counts, shots):
-    expected = shots[:, None] * jnp.maximum(q, PROBABILITY_FLOOR)
-    observed = counts
-    difference = observed - expected
-    positive_obs = observed > 0
-    safe_obs = jnp.where(positive_obs, observed, 1.0)
-    cell = 2.0 * (jnp.where(positive_obs, observed * jnp.log(safe_obs / expected), 0.0) - difference)
-    small = jnp.abs(difference) < 1e-6 * expected
-    # near o = e the deviance ~ (o-e)^2/e: use that form to keep the derivative finite
-    root = jnp.sqrt(jnp.where(small, 1.0, jnp.maximum(cell, 0.0)))
-    return jnp.where(small, difference / jnp.sqrt(expected), jnp.sign(difference) * root)
-
-
-def _pearson_residuals(q, counts, shots):
-    expected = shots[:, None] * jnp.maximum(q, PROBABILITY_FLOOR)
-    return (counts - expected) / jnp.sqrt(expected)
-
-
-class _Compiled:
-    """Jitted functions for one model, cutoff and weighting."""
-
-    def __init__(self, model: DetectorModel, n_photons: int, weighting: str, calibrated: bool):
-        self.model = model
-        self.n_photons = n_photons
-        self.calibrated = calibrated
-        residual_cells = _deviance_residuals if weighting == "deviance" else _pearson_residuals
-        n_model = len(model.parameter_names)
-
-        def split(x):
-            return (x[:n_model], x[n_model]) if calibrated else (x, 1.0)
-
-        def probabilities(x, coherent, thermal):
-            params, scale = split(x)
-            return predicted_probabilities(model, params, scale, coherent, thermal, n_photons)
-
-        def residuals(x, coherent, thermal, counts, shots, prior_width):
-            cells = residual_cells(probabilities(x, coherent, thermal), counts, shots).ravel()
-            if calibrated:
-                cells = jnp.concatenate([cells, ((x[n_model] - 1.0) / prior_width)[None]])
-            return cells
-
-        def probabilities_and_jacobian(x, coherent, thermal):
-            jac = jax.jacfwd(probabilities)(x, coherent, thermal)
-            return probabilities(x, coherent, thermal), jac
-
-        # fits with a calibration prior form residuals, their Jacobian and the Fisher
-        # information in numpy from the first function; the JAX residuals serve the
-        # vectorised bootstrap
-        self.probabilities_and_jacobian = jax.jit(probabilities_and_jacobian)
-        self.probabilities = jax.jit(probabilities)
-        self.residuals = jax.jit(residuals)
-
-
 @lru_cache(maxsize=64)
-def compiled(model: DetectorModel, n_photons: int, weighting: str = "deviance", calibrated: bool = False) -> _Compiled:
-    """Compiled objective functions for a model and cutoff (cached)."""
-    if weighting not in ("deviance", "pearson"):
-        raise ValueError(f"weighting must be 'deviance' or 'pearson', got {weighting!r}")
-    return _Compiled(model, n_photons, weighting, calibrated)
+def compiled(model: DetectorModel, n_photons: int):
+    """Compiled ``(x, coherent, thermal) -> (q[p, k], dq/dx[p, k, i])`` for fits with a
+    probe-calibration prior: ``x`` is the model parameters followed by the probe scale s, and
+    the probe photon numbers are multiplied by s (cached per model and cutoff)."""
+    n_model = len(model.parameter_names)
+
+    def probabilities(x, coherent, thermal):
+        return predicted_probabilities(model, x[:n_model], x[n_model], coherent, thermal, n_photons)
+
+    def probabilities_and_jacobian(x, coherent, thermal):
+        return probabilities(x, coherent, thermal), jax.jacfwd(probabilities)(x, coherent, thermal)
+
+    return jax.jit(probabilities_and_jacobian)
 
 
 _DISTRIBUTIONS: dict = {}
@@ -151,7 +110,7 @@ def povm_and_jacobian(model: DetectorModel, n_photons: int):
 
 
 def cell_residuals(q, counts, shots, weighting: str = "deviance") -> np.ndarray:
-    """Numpy twin of the residuals above, shape (n_probes, n_outcomes)."""
+    """Deviance (or Pearson) residual of every cell, shape (n_probes, n_outcomes)."""
     expected = shots[:, None] * np.maximum(q, PROBABILITY_FLOOR)
     difference = counts - expected
     if weighting == "pearson":
@@ -175,3 +134,120 @@ def cell_residual_derivative(q, residuals, counts, shots, weighting: str = "devi
         safe_r = np.where(small, 1.0, residuals)
         dr_de = np.where(small, -1.0 / np.sqrt(expected), -(difference / expected) / safe_r)
     return dr_de * shots[:, None]
+
+
+class FitProblem:
+    """The least-squares problem of one model on one scan: the one residual function of the
+    fit, its profiles and its bootstrap.
+
+    The POVM is computed by ``compute_model`` (a model with the same family and size and a
+    superset of the features); parameters of features the model lacks are held at values
+    that switch the feature off. The parameter vector ``x`` runs over ``names`` (the model's
+    parameters, then ``probe_scale`` with a calibration prior). Probes outside ``active``
+    are predicted but not fitted.
+    """
+
+    def __init__(self, scan, model, compute_model, n_photons, weighting, calibration_uncertainty, active=None):
+        self.model = model
+        self.calibrated = calibration_uncertainty is not None
+        self.width = float(calibration_uncertainty) if self.calibrated else 1.0
+        self.weighting = weighting
+        full = list(compute_model.parameter_names) + (["probe_scale"] if self.calibrated else [])
+        self.names = tuple(model.parameter_names) + (("probe_scale",) if self.calibrated else ())
+        missing = [n for n in self.names if n not in full]
+        if missing or compute_model.family != model.family or compute_model.n_outcomes != model.n_outcomes:
+            raise ArgumentError(f"compute_model: {compute_model.spec} cannot stand in for {model.spec}")
+        self.free_index = np.array([full.index(n) for n in self.names])
+        self.template = np.array([0.0 if n in self.names else null_value(n) for n in full])
+        self.coherent = np.asarray(scan.coherent_photons, float)
+        self.thermal = np.asarray(scan.thermal_photons, float)
+        self._probabilities_and_jacobian = self._compiled_predictions(compute_model, n_photons)
+        # probes outside ``active`` are predicted but not fitted (cross-validation keeps the
+        # compiled shapes of the whole scan)
+        self.active = np.ones(scan.n_probes, bool) if active is None else np.asarray(active, bool)
+        self.counts = np.asarray(scan.counts, float)[self.active]
+        self.shots = np.asarray(scan.shots, float)[self.active]
+        bounds = model.bounds()
+        if self.calibrated:
+            bounds["probe_scale"] = (max(1.0 - SCALE_SPAN * self.width, 0.05), 1.0 + SCALE_SPAN * self.width)
+        self.bounds = bounds
+        self.bounds_list = [bounds[n] for n in self.names]
+
+    @property
+    def lower(self) -> np.ndarray:
+        return np.array([lo for lo, _ in self.bounds_list], dtype=float)
+
+    @property
+    def upper(self) -> np.ndarray:
+        return np.array([hi for _, hi in self.bounds_list], dtype=float)
+
+    def with_counts(self, counts) -> "FitProblem":
+        """The same problem for another count table of the fitted probes (same shots per
+        probe), shape (n_active_probes, n_outcomes): a bootstrap resample."""
+        other = copy.copy(self)
+        other.counts = np.asarray(counts, float)
+        return other
+
+    def _compiled_predictions(self, compute_model, n_photons):
+        """full parameter vector -> (q[p, k], dq/dx[p, k, i]) for every probe."""
+        if self.calibrated:  # the probe distributions move with the fitted probe scale
+            predictions = compiled(compute_model, n_photons)
+            return lambda full: predictions(full, self.coherent, self.thermal)
+        # exact probes: constant distributions times the compiled POVM and its Jacobian
+        povm = povm_and_jacobian(compute_model, n_photons)
+        distributions = fixed_probe_distributions(self.coherent, self.thermal, n_photons)
+
+        def predictions(full):
+            theta, jac = povm(full)
+            return distributions @ np.asarray(theta).T, np.tensordot(distributions, np.asarray(jac), axes=(1, 1))
+
+        return predictions
+
+    def full_vector(self, x):
+        full = self.template.copy()
+        full[self.free_index] = x
+        return full
+
+    def _evaluate(self, x):
+        q, jac = self._probabilities_and_jacobian(self.full_vector(x))
+        return np.asarray(q)[self.active], np.asarray(jac)[self.active][..., self.free_index]
+
+    def all_probabilities(self, x):
+        """q[p, k] for every probe of the scan, fitted or not."""
+        # the probability+Jacobian function is the one compiled: reuse it rather than compile twice
+        q, _ = self._probabilities_and_jacobian(self.full_vector(x))
+        return np.asarray(q)
+
+    def probabilities(self, x):
+        return self.all_probabilities(x)[self.active]
+
+    def residuals(self, x):
+        r = cell_residuals(self.probabilities(x), self.counts, self.shots, self.weighting).ravel()
+        if self.calibrated:
+            r = np.append(r, (x[-1] - 1.0) / self.width)
+        return r
+
+    def residuals_and_jacobian(self, x):
+        q, jac = self._evaluate(x)
+        r = cell_residuals(q, self.counts, self.shots, self.weighting)
+        dr_dq = cell_residual_derivative(q, r, self.counts, self.shots, self.weighting)
+        rjac = (dr_dq[..., None] * jac).reshape(-1, len(x))
+        r = r.ravel()
+        if self.calibrated:
+            r = np.append(r, (x[-1] - 1.0) / self.width)
+            prior_row = np.zeros(len(x))
+            prior_row[-1] = 1.0 / self.width
+            rjac = np.vstack([rjac, prior_row])
+        return r, rjac
+
+    def deviance(self, x):
+        return float(np.sum(self.residuals(x) ** 2))
+
+    def fisher(self, x):
+        """Expected Fisher information of the multinomial counts, plus the prior."""
+        q, jac = self._evaluate(x)
+        q = np.maximum(q, PROBABILITY_FLOOR)
+        info = np.einsum("p,pki,pkj->ij", self.shots, jac / q[..., None], jac)
+        if self.calibrated:
+            info[-1, -1] += 1.0 / self.width**2
+        return info

@@ -36,9 +36,8 @@ from povmfit.models import choose_cutoff, povm_wigner, probe_distributions_numpy
 
 from povmfit.fitting.outputs import plots
 from povmfit.fitting.data.files import atomic_write_text
-from povmfit.fitting.inference.objective import compiled
 
-__all__ = ["write_report", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
+__all__ = ["write_report", "curve_cutoff", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
 
 _MAX_CURVE_LEVELS = 4
 _GRID_POINTS = 160
@@ -81,14 +80,9 @@ def _probe_points(scan) -> dict:
     }
 
 
-def model_curves(scan, result, theta=None) -> list[dict]:
-    """Fitted outcome probabilities along the coherent photon number, at the (up to four)
-    most populated thermal levels of the scan. The fitted probe scale, if any, is applied.
-
-    ``theta`` (n_outcomes, n_theta), optional: the fitted model's POVM. When it covers the
-    photon-number cutoff the curves need, q = P @ theta.T is formed in numpy (a model POVM's
-    column n does not depend on the cutoff); otherwise the compiled model is evaluated.
-    """
+def _curve_probes(scan, result):
+    """Probe settings of the model curves: a grid of coherent photon numbers at each of the
+    (up to four) most populated thermal levels, scaled by the fitted probe scale if any."""
     levels, index = _thermal_levels(scan)
     populated = sorted(int(j) for j in np.argsort(-np.bincount(index, minlength=levels.size), kind="stable")[:_MAX_CURVE_LEVELS])
     top = float(np.max(scan.coherent_photons))
@@ -98,12 +92,28 @@ def model_curves(scan, result, theta=None) -> list[dict]:
     scale = float(result.values.get("probe_scale", 1.0))
     coherent = np.tile(grid, len(populated)) * scale
     thermal = np.repeat(levels[populated], grid.size) * scale
+    return levels, populated, grid, coherent, thermal
+
+
+def curve_cutoff(scan, result) -> int:
+    """Photon numbers the model POVM must cover for :func:`model_curves`."""
+    return choose_cutoff(*_curve_probes(scan, result)[3:], 1e-10)
+
+
+def model_curves(scan, result, theta) -> list[dict]:
+    """Fitted outcome probabilities along the coherent photon number, at the (up to four)
+    most populated thermal levels of the scan. The fitted probe scale, if any, is applied.
+
+    ``theta`` (n_outcomes, n_theta): the fitted model's POVM, covering at least
+    :func:`curve_cutoff` photon numbers (a model POVM's column n does not depend on the
+    cutoff); q = P @ theta.T is formed in numpy.
+    """
+    levels, populated, grid, coherent, thermal = _curve_probes(scan, result)
     n_photons = choose_cutoff(coherent, thermal, 1e-10)
-    if theta is not None and np.shape(theta)[1] >= n_photons:
-        distributions = probe_distributions_numpy(coherent, thermal, n_photons)
-        q = distributions @ np.asarray(theta, dtype=float)[:, :n_photons].T
-    else:
-        q = np.asarray(compiled(result.model, n_photons).probabilities(result.parameter_vector, coherent, thermal))
+    if np.shape(theta)[1] < n_photons:
+        raise ValueError(f"the model POVM covers {np.shape(theta)[1]} photon numbers; the curves need {n_photons}")
+    distributions = probe_distributions_numpy(coherent, thermal, n_photons)
+    q = distributions @ np.asarray(theta, dtype=float)[:, :n_photons].T
     q = q.reshape(len(populated), grid.size, -1)
     return [{"level": j, "mean_photons": grid + levels[j], "probability": q[i]} for i, j in enumerate(populated)]
 
@@ -317,7 +327,7 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
     model_theta, model_se = np.asarray(cross["model_theta"]), np.asarray(cross["model_stderr"])
 
     probes = _probe_points(scan)
-    curves = model_curves(scan, result, model_theta)
+    curves = model_curves(scan, result, cross.get("curve_theta", model_theta))
     svg_prob = _save_plot(out_dir, "outcome_probabilities", plots.outcome_probabilities_figure(probes, curves, n_outcomes), files)
 
     z = standardised_residuals(scan, result.predicted)

@@ -1,7 +1,7 @@
 """Compact human-readable summary of a datasheet for the terminal."""
 from __future__ import annotations
 
-__all__ = ["format_summary"]
+__all__ = ["format_summary", "TerminalProgress"]
 
 
 def _num(value, digits=4) -> str:
@@ -44,3 +44,28 @@ def format_summary(sheet: dict, files: dict) -> str:
     if plots:
         lines.append(f"wrote {'plots':<12} {len(plots)} files in {plots[0].parent}")
     return "\n".join(lines)
+
+
+class TerminalProgress:
+    """A ``progress(task, done, total)`` callback drawing one bar per task on a stream
+    (stderr by default); silent when the stream is not a terminal."""
+
+    def __init__(self, stream=None):
+        import sys
+
+        self.stream = stream if stream is not None else sys.stderr
+        self.active = bool(getattr(self.stream, "isatty", lambda: False)())
+        self._task = None
+
+    def __call__(self, task: str, done: int, total: int) -> None:
+        if not self.active or total <= 0:
+            return
+        if task != self._task and self._task is not None:
+            self.stream.write("\n")
+        self._task = task
+        filled = int(30 * min(done, total) / total)
+        self.stream.write(f"\r{task:<28} [{'#' * filled}{'.' * (30 - filled)}] {done}/{total}")
+        if done >= total:
+            self.stream.write("\n")
+            self._task = None
+        self.stream.flush()

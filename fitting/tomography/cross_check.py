@@ -22,6 +22,7 @@ from scipy.special import chdtrc
 
 from povmfit.models import probe_distributions_numpy
 
+from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.pointwise_wigner import _solve, thermal_design, wigner_from_p
 
 __all__ = ["cross_check", "model_pointwise_wigner", "CONSISTENT_LEVEL"]
@@ -92,8 +93,8 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
     Args:
         model_theta, model_theta_stderr: (n_outcomes, n_photons) model POVM and its standard
             errors (e.g. propagated from the fit covariance).
-        reconstruction: :class:`~povmfit.fitting.reconstruct.Reconstruction`.
-        pointwise: :class:`~povmfit.fitting.pointwise_wigner.PointwiseWigner` or None.
+        reconstruction: :class:`~povmfit.fitting.tomography.reconstruct.Reconstruction`.
+        pointwise: :class:`~povmfit.fitting.tomography.pointwise_wigner.PointwiseWigner` or None.
         model_wigner: (n_outcomes, n_points) model Wigner values at ``pointwise.alpha``; default:
             the pointwise estimator applied to the model's probabilities (needs ``probes`` =
             (coherent_photons, thermal_photons) arrays of the scan).
@@ -117,7 +118,8 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
     if pointwise is not None:
         if model_wigner is None:
             if probes is None:
-                raise ValueError("cross_check needs probes=(coherent, thermal) to forward-model the Wigner values")
+                raise ArgumentError("probes: cross_check needs probes=(coherent, thermal) to forward-model the "
+                                    "Wigner values (or model_wigner)")
             model_wigner = model_pointwise_wigner(model_theta, pointwise, *probes)
         stderr = np.zeros_like(pointwise.values) if model_wigner_stderr is None else model_wigner_stderr
         wigner = _wigner_part(model_wigner, stderr, pointwise)

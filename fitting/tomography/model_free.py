@@ -1,50 +1,87 @@
-"""The model-free reconstructions of a scan, as the whole job uses them.
+"""The model-free reconstructions of a scan: one estimator for the reconstruct verb and the
+whole job.
 
-The full diagonal POVM (the costly part), the pointwise and smoothed Wigner values with the
-phase-insensitivity test, and the reconstructions of scans simulated from a fitted model for
-the cross-check. Each is a plain function of picklable arguments, so the whole job can run
-the POVM in a worker process beside the model ranking.
+:func:`reconstruct_scan` is the shared entry point: the full diagonal POVM
+(:func:`povm_reconstruction`, the costly part) and the pointwise and smoothed Wigner values
+with the phase-insensitivity test (:func:`wigner_reconstructions`), assembled into a
+:class:`ScanReconstruction`. The whole job calls the two parts itself, to run the POVM in a
+worker process beside the model ranking, and :func:`reconstructions_under_model` for the
+cross-check. These three are module-level functions of picklable arguments (a ``Scan``,
+numbers, arrays) that print nothing and return picklable results; the ``progress`` callback
+stays None when they run in another process.
 """
 from __future__ import annotations
 
+import numbers
+import os
+
+from povmfit.fitting.data.errors import ArgumentError
+from povmfit.fitting.tomography.scan_reconstruction import ScanReconstruction
+
 __all__ = [
-    "model_free_reconstructions", "povm_reconstruction", "wigner_reconstructions", "reconstructions_under_model",
-    "RECONSTRUCTION_BOOTSTRAP", "CROSS_CHECK_SIMULATIONS",
+    "reconstruct_scan", "povm_reconstruction", "wigner_reconstructions", "reconstructions_under_model",
+    "RECONSTRUCTION_BOOTSTRAP", "CROSS_CHECK_SIMULATIONS", "WIGNER_METHOD",
 ]
 
-RECONSTRUCTION_BOOTSTRAP = 50  # fewer bootstrap resamples than `povmfit reconstruct` (100)
+RECONSTRUCTION_BOOTSTRAP = 50  # parametric-bootstrap resamples of the POVM and of the Wigner values
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
+WIGNER_METHOD = "box"  # the published box-constrained pointwise estimator, outcome by outcome
 
 
-def model_free_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> dict:
-    """{reconstruction, pointwise, smoothed, phase_test} of a scan (no model involved)."""
-    return {"reconstruction": povm_reconstruction(scan, seed, bootstrap), **wigner_reconstructions(scan, seed, bootstrap)}
+def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: int = 0, saturation: int | None = None,
+                     progress=None) -> ScanReconstruction:
+    """Model-free reconstructions of a scan: POVM, pointwise and smoothed Wigner values, phase test.
+
+    Args:
+        scan: a ``Scan`` or the path of a scan file (CSV or Parquet).
+        bootstrap: parametric-bootstrap resamples for the standard errors (0: none).
+        seed: seeds the cross-validation folds and the bootstraps (the POVM's and the Wigner
+            values' draws are seeded independently).
+        saturation: saturation photon number M of the smoothed Wigner curve; default: chosen
+            by AIC among 1..M of the pointwise values.
+        progress: optional callback ``progress(task, done, total)``; nothing is printed.
+    Returns:
+        :class:`ScanReconstruction` (``write(out_dir)`` gives povm.csv, wigner.csv and
+        reconstruction.json).
+    """
+    scan = _as_scan(scan)
+    bootstrap = _whole_number(bootstrap, "bootstrap", 0)
+    seed = _whole_number(seed, "seed", 0)
+    if saturation is not None:
+        saturation = _whole_number(saturation, "saturation", 1)
+    reconstruction = povm_reconstruction(scan, seed, bootstrap, progress=progress)
+    return ScanReconstruction.from_parts(
+        scan, reconstruction, wigner_reconstructions(scan, seed, bootstrap, saturation=saturation, progress=progress))
 
 
-def povm_reconstruction(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP):
-    """The full diagonal POVM (cross-validated regularisation, bootstrap errors)."""
+def povm_reconstruction(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, progress=None):
+    """The full diagonal POVM (cross-validated regularisation, bootstrap errors): a ``Reconstruction``."""
     from povmfit.fitting.tomography.reconstruct import reconstruct_povm
 
     return reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=bootstrap, seed=seed,
-                            quiet=True)
+                            progress=progress)
 
 
-def wigner_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP) -> dict:
-    """{pointwise, smoothed, phase_test}: Wigner values point by point and smoothed, and the
-    phase-insensitivity test (each seeded on its own, independent of the POVM's draws)."""
+def wigner_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, saturation: int | None = None,
+                           progress=None) -> dict:
+    """{pointwise, smoothed, phase_test}: Wigner values point by point (box method) and
+    smoothed, and the phase-insensitivity test (seeded on their own, independent of the POVM's
+    draws). The smoothed curve has ``saturation`` M when given, else M chosen by AIC up to
+    the pointwise values' M (the saturation prior of the values it summarises)."""
     import numpy as np
 
     from povmfit.fitting.tomography.pointwise_wigner import phase_insensitivity_test, pointwise_wigner, smoothed_wigner
 
     coherent, thermal, counts = scan.coherent_photons, scan.thermal_photons, scan.counts
     with np.errstate(over="ignore", invalid="ignore"):  # scipy's trust-region internals (benign)
-        # the published box-constrained estimator (per outcome) keeps the pipeline fast
-        pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method="box",
-                                     bootstrap=bootstrap, seed=seed, quiet=True)
+        pointwise = pointwise_wigner(coherent, thermal, counts, scan.phase_rad, method=WIGNER_METHOD,
+                                     bootstrap=bootstrap, seed=seed, progress=progress)
         smoothed = None
         if pointwise is not None and pointwise.alpha.size >= 2:
-            # the smoothed curve keeps the saturation prior of the pointwise values it summarises
-            smoothed = smoothed_wigner(pointwise, max_saturation=pointwise.saturation)
+            if saturation is None:
+                smoothed = smoothed_wigner(pointwise, max_saturation=pointwise.saturation)
+            else:
+                smoothed = smoothed_wigner(pointwise, saturation)
         phase_test = phase_insensitivity_test(coherent, thermal, counts, scan.phase_rad)
     return {"pointwise": pointwise, "smoothed": smoothed, "phase_test": phase_test}
 
@@ -73,3 +110,19 @@ def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations:
     # time does
     draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, reconstruction.theta, rtol=1e-11)
     return draws.mean(axis=0), draws.std(axis=0, ddof=1)
+
+
+def _as_scan(scan):
+    from povmfit.fitting.data.scan import Scan, load_scan
+
+    if isinstance(scan, (str, os.PathLike)):
+        return load_scan(scan)
+    if not isinstance(scan, Scan):
+        raise ArgumentError(f"scan: expected a Scan or the path of a scan file, got {type(scan).__name__}")
+    return scan
+
+
+def _whole_number(value, argument: str, smallest: int) -> int:
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral) or value < smallest:
+        raise ArgumentError(f"{argument}: expected a whole number >= {smallest}, got {value!r}")
+    return int(value)

@@ -31,14 +31,16 @@ from scipy.special import chdtrc
 
 from povmfit.models import fock_wigner_table_numpy
 
-from povmfit.fitting.tomography.reconstruct import Progress
+from povmfit.fitting.data.errors import ArgumentError
 
 __all__ = [
     "PointwiseWigner", "SmoothedWigner", "PhaseTest", "pointwise_wigner", "smoothed_wigner",
     "phase_insensitivity_test", "thermal_design", "wigner_from_p", "displacement_groups", "box_least_squares",
+    "BOOTSTRAP_TASK",
 ]
 
 _DECIMALS = 9  # probe settings equal to 9 decimals count as the same setting
+BOOTSTRAP_TASK = "bootstrap (Wigner)"  # progress task name: one step per displacement
 
 
 def thermal_design(thermal_levels, saturation: int) -> np.ndarray:
@@ -210,7 +212,7 @@ class PointwiseWigner:
 
 def pointwise_wigner(coherent, thermal, counts, phase=None, *, saturation: int | None = None,
                      method: str = "simplex", bootstrap: int = 100, seed: int | None = 0,
-                     quiet: bool = False) -> PointwiseWigner | None:
+                     progress=None) -> PointwiseWigner | None:
     """Wigner values at every displacement probed at two or more thermal levels.
 
     Args:
@@ -220,11 +222,14 @@ def pointwise_wigner(coherent, thermal, counts, phase=None, *, saturation: int |
         saturation: M for every point; default (number of distinct thermal levels - 1), the
             smallest over the points.
         method: "simplex" or "box" (see module docstring).
+        bootstrap: parametric-bootstrap resamples (0 or 1: no standard errors); seed: theirs.
+        progress: optional callback ``progress(task, done, total)`` (task
+            :data:`BOOTSTRAP_TASK`); nothing is printed.
     Returns:
         :class:`PointwiseWigner`, or None when no displacement has two thermal levels.
     """
     if method not in ("simplex", "box"):
-        raise ValueError(f"method must be 'simplex' or 'box', got {method!r}")
+        raise ArgumentError(f"method: expected 'simplex' or 'box', got {method!r}")
     counts = np.asarray(counts, dtype=np.int64)
     thermal = np.asarray(thermal, dtype=float)
     shots = counts.sum(axis=1)
@@ -235,13 +240,14 @@ def pointwise_wigner(coherent, thermal, counts, phase=None, *, saturation: int |
     levels = np.array([np.unique(np.round(thermal[idx], _DECIMALS)).size for _, _, idx in groups])
     m = int(levels.min() - 1) if saturation is None else int(saturation)
     if m < 1:
-        raise ValueError(f"saturation M must be >= 1, got {m}")
+        raise ArgumentError(f"saturation: expected a photon number M >= 1, got {m}"
+                            + ("" if saturation is not None else " (one fewer than the fewest thermal levels at a point)"))
     designs = [thermal_design(thermal[idx], m) for _, _, idx in groups]
     weights = [shots[idx] / shots[idx].mean() for _, _, idx in groups]
     frequencies = [counts[idx] / shots[idx, None] for _, _, idx in groups]
     p = np.stack([_solve(t, w, f, method) for t, w, f in zip(designs, weights, frequencies)])
     rng = np.random.default_rng(seed)
-    replicas = _bootstrap_p(p, designs, weights, [shots[idx] for _, _, idx in groups], method, bootstrap, rng, quiet)
+    replicas = _bootstrap_p(p, designs, weights, [shots[idx] for _, _, idx in groups], method, bootstrap, rng, progress)
     values = wigner_from_p(p).T
     replicate_values = np.swapaxes(wigner_from_p(replicas), 1, 2)  # (bootstrap, K, n_points)
     stderr = replicate_values.std(axis=0, ddof=1) if bootstrap > 1 else np.zeros_like(values)
@@ -250,7 +256,7 @@ def pointwise_wigner(coherent, thermal, counts, phase=None, *, saturation: int |
                            method, int(bootstrap), seed, replicate_values)
 
 
-def _bootstrap_p(p, designs, weights, shots, method, replicates, rng, quiet):
+def _bootstrap_p(p, designs, weights, shots, method, replicates, rng, progress):
     """(replicates, n_points, n_outcomes, M+1) re-solved p from multinomial resamples.
 
     The counts are drawn replicate by replicate, point by point (in that order); the box
@@ -263,7 +269,6 @@ def _bootstrap_p(p, designs, weights, shots, method, replicates, rng, quiet):
         q = np.clip(t @ point.T, 0.0, None)
         expected.append(q / q.sum(axis=1, keepdims=True))
     draws = [[rng.multinomial(s, q) / s[:, None] for s, q in zip(shots, expected)] for _ in range(replicates)]
-    progress = Progress(len(designs), "bootstrap (Wigner)", quiet)
     out = np.empty((replicates,) + p.shape)
     n_outcomes = p.shape[1]
     for i, (t, w) in enumerate(zip(designs, weights)):
@@ -273,7 +278,8 @@ def _bootstrap_p(p, designs, weights, shots, method, replicates, rng, quiet):
             out[:, i] = solved.reshape(replicates, n_outcomes, -1)
         else:
             out[:, i] = [_solve(t, w, table, method) for table in tables]
-        progress.update(i + 1)
+        if progress is not None:
+            progress(BOOTSTRAP_TASK, i + 1, len(designs))
     return out
 
 
@@ -343,6 +349,8 @@ def smoothed_wigner(pointwise: PointwiseWigner, saturation: int | None = None, n
     The curve is reported at the pointwise displacements and on ``n_grid`` real alphas from 0
     to the largest |alpha|; its errors come from refitting every bootstrap replicate.
     """
+    if saturation is not None and saturation < 1:
+        raise ArgumentError(f"saturation: expected a photon number M >= 1, got {saturation!r}")
     values = pointwise.values
     sigma = np.maximum(pointwise.stderr, 1e-3 / math.pi)
     radii = np.unique(np.round(np.abs(pointwise.alpha), _DECIMALS)).size

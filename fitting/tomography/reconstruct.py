@@ -21,7 +21,6 @@ re-solved at the chosen g).
 """
 from __future__ import annotations
 
-import sys
 from dataclasses import dataclass
 
 import numpy as np
@@ -45,35 +44,19 @@ from povmfit.fitting.tomography.povm_solver import (
 
 __all__ = [
     "Reconstruction", "reconstruct_povm", "ProblemLayout", "build_layout", "WeightedOperator",
-    "weighted_operator", "solve_povm", "solve_povm_batch", "cross_validate", "predicted_frequencies", "Progress",
+    "weighted_operator", "solve_povm", "solve_povm_batch", "cross_validate", "predicted_frequencies",
     "objective_value", "project_columns_to_simplex", "coarse_start", "interpolation_matrix", "DEFAULT_GRID",
-    "DEFAULT_FOLDS", "BATCH",
+    "DEFAULT_FOLDS", "BATCH", "CROSS_VALIDATION_TASK", "BOOTSTRAP_TASK",
 ]
 
 DEFAULT_GRID = tuple(10.0 ** np.arange(-8, 1))  # g / lambda_max(F^T W F)
 DEFAULT_FOLDS = 5
 CONSTRAINED_FRACTION = 1e-2  # n is "constrained" where the probe weight is >= 1% of its peak
+CROSS_VALIDATION_TASK = "cross-validation (POVM)"  # progress task names
+BOOTSTRAP_TASK = "bootstrap (POVM)"
 
 
 # ----- cross-validation, bootstrap and the result ---------------------------------------------
-class Progress:
-    """Plain-text progress bar on stderr; silent when ``quiet`` or stderr is not a terminal."""
-
-    def __init__(self, total: int, label: str, quiet: bool = False, stream=None):
-        self.stream = stream if stream is not None else sys.stderr
-        self.total, self.label = int(total), label
-        self.active = not quiet and total > 0 and getattr(self.stream, "isatty", lambda: False)()
-
-    def update(self, done: int) -> None:
-        if not self.active:
-            return
-        filled = int(30 * done / self.total)
-        self.stream.write(f"\r{self.label} [{'#' * filled}{'.' * (30 - filled)}] {done}/{self.total}")
-        if done >= self.total:
-            self.stream.write("\n")
-        self.stream.flush()
-
-
 @dataclass(frozen=True)
 class Reconstruction:
     """Result of :func:`reconstruct_povm`.
@@ -142,12 +125,14 @@ def _fold_ids(n_probes: int, folds: int, rng: np.random.Generator) -> np.ndarray
     return rng.permutation(np.arange(n_probes) % folds)
 
 
-def cross_validate(layout, frequencies, probe_weights, grid, folds: int, rng, rtol=1e-10, max_iter=50_000):
+def cross_validate(layout, frequencies, probe_weights, grid, folds: int, rng, rtol=1e-10, max_iter=50_000,
+                   progress=None):
     """Held-out weighted squared error for every g in ``grid``: shape (len(grid),).
 
     Each fold's probes get weight 0 in training and are scored on their predicted
     frequencies. The folds are solved together, one g at a time from the largest down, each
-    g warm-started at the previous one's solution of the same fold.
+    g warm-started at the previous one's solution of the same fold. ``progress``: optional
+    callback ``progress(task, done, total)``, called after each g.
     """
     n_probes = frequencies.shape[0]
     folds = max(2, min(folds, n_probes))
@@ -156,17 +141,19 @@ def cross_validate(layout, frequencies, probe_weights, grid, folds: int, rng, rt
     ops = [weighted_operator(layout, np.where(h, 0.0, probe_weights)) for h in held]
     scores = np.zeros(len(grid))
     thetas = None
-    for i in np.argsort(grid)[::-1]:
+    for done, i in enumerate(np.argsort(grid)[::-1], start=1):
         thetas, _, _ = solve_povm_batch(ops, frequencies, grid[i], thetas, rtol, max_iter)
         for h, theta in zip(held, thetas):
             predicted = predicted_frequencies(layout, theta, n_probes)
             scores[i] += float(np.sum(probe_weights[h, None] * (predicted[h] - frequencies[h]) ** 2))
+        if progress is not None:
+            progress(CROSS_VALIDATION_TASK, done, len(grid))
     return scores
 
 
 def reconstruct_povm(coherent, thermal, counts, *, n_photons: int | None = None, grid=None,
                      folds: int = DEFAULT_FOLDS, bootstrap: int = 100, seed: int | None = 0,
-                     quiet: bool = False, tolerance: float = 1e-10) -> Reconstruction:
+                     tolerance: float = 1e-10, progress=None) -> Reconstruction:
     """Reconstruct the diagonal POVM from probe counts.
 
     Args:
@@ -179,7 +166,9 @@ def reconstruct_povm(coherent, thermal, counts, *, n_photons: int | None = None,
         folds: cross-validation folds over probes.
         bootstrap: parametric bootstrap replicates (0: no standard errors).
         seed: seeds the fold assignment and the bootstrap.
-        quiet: no progress bar.
+        tolerance: neglected tail mass of the default cutoff.
+        progress: optional callback ``progress(task, done, total)`` (tasks
+            :data:`CROSS_VALIDATION_TASK` and :data:`BOOTSTRAP_TASK`); nothing is printed.
     """
     counts = np.asarray(counts, dtype=np.int64)
     shots = counts.sum(axis=1).astype(float)
@@ -194,13 +183,13 @@ def reconstruct_povm(coherent, thermal, counts, *, n_photons: int | None = None,
     rng = np.random.default_rng(seed)
     cross_validated = absolute.size > 1
     if cross_validated:
-        scores = cross_validate(layout, frequencies, probe_weights, absolute, folds, rng)
+        scores = cross_validate(layout, frequencies, probe_weights, absolute, folds, rng, progress=progress)
         chosen = float(absolute[int(np.argmin(scores))])
     else:
         scores, chosen = np.zeros(1), float(absolute[0])
     start = coarse_start(layout, frequencies, probe_weights, chosen) if op.kind == "blocks" else None
     theta, iterations, converged = solve_povm(op, frequencies, chosen, start)
-    stderr = _bootstrap_stderr(op, theta, shots, chosen, bootstrap, rng, quiet)
+    stderr = _bootstrap_stderr(op, theta, shots, chosen, bootstrap, rng, progress)
     weight = banded_probe_distributions(coherent, thermal, n_photons).column_weights(shots)
     return Reconstruction(
         theta=theta, stderr=stderr, regularisation=chosen, regularisation_grid=absolute,
@@ -211,7 +200,7 @@ def reconstruct_povm(coherent, thermal, counts, *, n_photons: int | None = None,
     )
 
 
-def _bootstrap_stderr(op, theta, shots, g, replicates, rng, quiet):
+def _bootstrap_stderr(op, theta, shots, g, replicates, rng, progress):
     """Standard deviation over parametric-bootstrap re-solves: (n_outcomes, n_photons).
 
     The replicates' counts are drawn in order from ``rng`` (one multinomial draw per
@@ -221,12 +210,12 @@ def _bootstrap_stderr(op, theta, shots, g, replicates, rng, quiet):
         return np.zeros_like(theta)
     q = np.clip(predicted_frequencies(op.layout, theta, shots.size), 0.0, None)
     q /= q.sum(axis=1, keepdims=True)
-    progress = Progress(replicates, "bootstrap (POVM)", quiet)
     counts = shots.astype(np.int64)
     samples = np.empty((replicates,) + theta.shape)
     for first in range(0, replicates, BATCH):
         size = min(BATCH, replicates - first)
         simulated = np.stack([rng.multinomial(counts, q) for _ in range(size)]) / shots[:, None]
         samples[first : first + size] = solve_povm_batch(op, simulated, g, theta, rtol=1e-11)[0]
-        progress.update(first + size)
+        if progress is not None:
+            progress(BOOTSTRAP_TASK, first + size, replicates)
     return samples.std(axis=0, ddof=1)

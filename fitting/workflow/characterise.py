@@ -1,146 +1,253 @@
-"""The main job, one way through: scan -> model ranking -> fit -> cross-check -> outputs.
+"""The whole job on one scan: model ranking, fit, model-free reconstructions, cross-check.
 
-Everything that can refuse the input (loading, options, identifiability) happens before the
-first file is written; every file is written atomically.
+Data flow: scan -> ranking and fit of the chosen model (``inference``) -> reconstructions of
+the scan and of scans simulated from the fit (``tomography``) -> cross-check -> datasheet,
+detector file, tables and report (``outputs``). The model-free POVM does not depend on the
+fit, so with ``n_jobs >= 2`` it runs in a worker process (``concurrent.futures``) while this
+process ranks and fits the models; the outputs never depend on where a part was computed
+(same functions, same seeds).
 """
 from __future__ import annotations
 
-import sys
-import warnings
+import multiprocessing
+import os
+from concurrent.futures import Future, ProcessPoolExecutor
+from contextlib import contextmanager
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 import povmfit
-from povmfit.models import parse_model_spec, povm_wigner
-
-from povmfit.fitting.data.files import write_json
-from povmfit.fitting.inference.candidates import candidate_models, family_compute_model
-from povmfit.fitting.inference.compare import compare_models
-from povmfit.fitting.outputs.datasheet import datasheet_document
-from povmfit.fitting.data.detector_file import DetectorRecord, save_detector
-from povmfit.fitting.inference.fit import FitNotConverged, check_identifiable, fit_scan
-from povmfit.fitting.tomography.model_free import CROSS_CHECK_SIMULATIONS, ModelFreeJob, ranking_request, start_model_free
-from povmfit.fitting.data.scan import load_scan
+from povmfit.fitting.data.detector_file import DetectorRecord
 from povmfit.fitting.data.errors import ArgumentError
+from povmfit.fitting.data.scan import Scan
+from povmfit.fitting.display import format_uncertain, html_block, html_table, text_table
+from povmfit.fitting.inference.compare import Comparison
+from povmfit.fitting.inference.fit import FitResult
+from povmfit.fitting.tomography.scan_reconstruction import ScanReconstruction
+from povmfit.fitting.inference.fit import check_identifiable
+from povmfit.fitting.workflow.arguments import as_model, as_models, as_scan
 
-__all__ = ["run_fit_pipeline", "model_povm_with_errors"]
-
-
-def _parse_model_option(text: str, option: str = "--model"):
-    try:
-        return parse_model_spec(text)
-    except ValueError as error:
-        raise ArgumentError(f"{option}: {error}") from None
-
-
-def model_povm_with_errors(result, n_photons: int):
-    """Model POVM theta[k, n] and its delta-method standard errors (combined covariance)."""
-    theta, jac = result.povm_and_jacobian(n_photons)
-    n_model = len(result.model.parameter_names)
-    var = np.einsum("kni,ij,knj->kn", jac, result.covariance[:n_model, :n_model], jac)
-    return theta, np.sqrt(np.clip(var, 0, None))
+__all__ = ["characterise", "Characterisation"]
 
 
-def _select_model(scan, args):
-    if args.model != "auto":
-        return _parse_model_option(args.model), None
-    if args.candidates:
-        candidates = [_parse_model_option(c, "--candidates") for c in args.candidates.split(",") if c.strip()]
-    else:
-        candidates = candidate_models(scan.n_outcomes)
-    comparison = compare_models(
-        scan, candidates, args.calibration_uncertainty, seed=args.seed, quiet=args.quiet or args.json
-    )
-    return comparison.chosen, comparison
+@dataclass(frozen=True)
+class Characterisation:
+    """Result of :func:`characterise`.
 
-
-def run_fit_pipeline(scan_path, out_dir: Path, args, model_free: ModelFreeJob | None = None, scan=None) -> dict:
-    """Run fit (+ ranking, cross-check, report) and write every output. Returns a summary dict.
-
-    ``model_free``: the reconstructions already started by :func:`start_model_free` (the
-    command line starts them before importing this module); started here when absent.
-    ``scan``: the scan already loaded from ``scan_path``, if it is.
+    Attributes:
+        scan: the :class:`~povmfit.fitting.data.scan.Scan` analysed.
+        fit: :class:`~povmfit.fitting.inference.fit.FitResult` of the chosen model.
+        comparison: :class:`~povmfit.fitting.inference.compare.Comparison` of the candidates,
+            or None when the model was given.
+        model_free: the model-free reconstructions of the scan (``tomography``
+            ``ScanReconstruction``: the POVM, the pointwise and smoothed Wigner values, the
+            phase-insensitivity test), exactly what :func:`povmfit.reconstruct` gives.
+        model_theta, model_stderr: (n_outcomes, n_photons) fitted POVM and its delta-method
+            standard errors, on the reconstruction's photon numbers or more (as many as the
+            report's model curves need).
+        model_wigner_alpha, model_wigner: displacements (complex amplitude alpha) and the
+            fitted model's Wigner values there, (n_outcomes, n_points); None without points.
+        cross_check: JSON-able comparison of the fit with the reconstructions (see
+            ``tomography.cross_check``), with its verdict.
+        options: the analysis options (calibration_uncertainty, gate_duration_s, weighting,
+            bootstrap, seed, model, candidates), as recorded in the provenance.
     """
-    if model_free is None:
-        model_free = start_model_free(scan_path, args.seed, ranking=ranking_request(args))
-    try:
-        scan = scan if scan is not None else load_scan(scan_path)
-        if args.model != "auto":  # refuse what can be refused before any work starts
-            if args.candidates:
-                raise ArgumentError("--candidates is only used with --model auto")
-            check_identifiable(scan, _parse_model_option(args.model))
-        elif args.candidates:
-            for spec in args.candidates.split(","):
-                _parse_model_option(spec, "--candidates")
-        # the model-free reconstructions run in their own process meanwhile
-        model, comparison, result = _rank_and_fit(scan, args)
-        # the helper gets the fit, to simulate scans from it while the rest is prepared here
-        parts = model_free.result(scan, result.predicted)
-        cross = _cross_check_section(scan, result, parts, model_free)
-    finally:
-        model_free.cancel()
 
-    options = {
-        "model": args.model,
-        "candidates": args.candidates,
-        "calibration_uncertainty": args.calibration_uncertainty,
-        "gate_duration_s": args.gate_duration,
-        "weighting": args.weighting,
-        "bootstrap": args.bootstrap,
-        "seed": args.seed,
+    scan: Scan
+    fit: FitResult
+    comparison: Comparison | None
+    model_free: ScanReconstruction
+    model_theta: np.ndarray
+    model_stderr: np.ndarray
+    model_wigner_alpha: np.ndarray | None
+    model_wigner: np.ndarray | None
+    cross_check: dict
+    options: dict
+
+    @property
+    def reconstruction(self):
+        """The model-free POVM (``model_free.reconstruction``)."""
+        return self.model_free.reconstruction
+
+    @property
+    def model(self):
+        """The chosen DetectorModel."""
+        return self.fit.model
+
+    @property
+    def verdict(self) -> str:
+        if self.comparison is not None:
+            return self.comparison.verdict
+        return f"{self.model.spec} fitted as requested (no model comparison)."
+
+    def datasheet(self) -> dict:
+        """The ``povmfit.datasheet/1`` document (plain JSON-able data)."""
+        from povmfit.fitting.outputs.datasheet import datasheet_document
+
+        sheet = datasheet_document(
+            self.scan, self.fit, options=self.options, gate_duration_s=self.options["gate_duration_s"],
+            comparison=self.comparison.rows() if self.comparison else _single_row(self.fit),
+            verdict=self.verdict, cross_check=self.cross_check,
+        )
+        if self.comparison is not None:
+            sheet["likelihood_ratio_tests"] = self.comparison.tests
+        return sheet
+
+    def detector(self) -> DetectorRecord:
+        """The fitted detector as stored in ``detector.json`` (input of the emulator)."""
+        return self.fit.to_detector(
+            gate_duration_s=self.options["gate_duration_s"],
+            provenance={"software": f"povmfit {povmfit.__version__}", "input_file": str(self.scan.source),
+                        "input_sha256": self.scan.sha256, "options": self.options},
+        )
+
+    def write(self, out_dir, report: bool = True) -> dict:
+        """Write datasheet.json, detector.json, povm.csv, wigner.csv and (with ``report``)
+        report.html with plots/ into ``out_dir``, each file atomically; returns {name: Path}."""
+        from povmfit.fitting.outputs.files import write_characterisation
+
+        return write_characterisation(self, Path(out_dir), report=report)
+
+    def figures(self) -> dict:
+        return self.datasheet()["figures"]
+
+    def summary(self) -> str:
+        """Plain text: model, verdict, figures with uncertainties, fit quality, cross-check."""
+        sheet = self.datasheet()
+        rows = [[name, format_uncertain(f["value"], f["stderr"]), f"[{f['ci95'][0]:.4g}, {f['ci95'][1]:.4g}]"]
+                for name, f in sheet["figures"].items()]
+        gof = sheet["goodness_of_fit"]
+        lines = [f"model        {self.model.spec}", f"verdict      {self.verdict}", "",
+                 text_table(["figure", "value ± stderr", "95 % interval"], rows), "",
+                 f"fit quality  deviance {gof['deviance']:.1f} on {gof['dof']} dof, p = {gof['p_value']:.3g}",
+                 f"cross-check  {self.cross_check.get('verdict', 'n/a')}"]
+        note = sheet["calibration"].get("note")
+        return "\n".join(lines + ([f"note: {note}"] if note else []))
+
+    def _repr_html_(self) -> str:
+        sheet = self.datasheet()
+        rows = [[name, format_uncertain(f["value"], f["stderr"]), f"[{f['ci95'][0]:.4g}, {f['ci95'][1]:.4g}]"]
+                for name, f in sheet["figures"].items()]
+        return html_block(f"Characterisation of {self.scan.source}: {self.model.spec}",
+                          [self.verdict, f"cross-check: {self.cross_check.get('verdict', 'n/a')}"],
+                          [html_table(["figure", "value ± stderr", "95 % interval"], rows)])
+
+    def to_dataframe(self):
+        """The figures as a pandas DataFrame: one row per figure (value, stderr, ci95_lo, ci95_hi)."""
+        import pandas as pd
+
+        figures = self.datasheet()["figures"]
+        return pd.DataFrame(
+            [{"figure": name, "value": f["value"], "stderr": f["stderr"], "ci95_lo": f["ci95"][0], "ci95_hi": f["ci95"][1]}
+             for name, f in figures.items()]
+        ).set_index("figure")
+
+    def to_dict(self) -> dict:
+        """The datasheet document (JSON-able)."""
+        return self.datasheet()
+
+
+def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty=None, gate_duration=None,
+                 weighting: str = "deviance", bootstrap: int = 0, seed: int = 0, n_jobs: int = 1,
+                 progress=None) -> Characterisation:
+    """Characterise a detector from one scan: rank the candidate models (``model="auto"``) or
+    fit the given one, reconstruct the POVM and the Wigner values model-free, cross-check.
+
+    Args:
+        scan: a :class:`Scan`, or the path of a scan file (CSV or Parquet).
+        model: "auto", a model spec such as ``"array:8+dark+crosstalk"``, or a DetectorModel.
+        candidates: with ``model="auto"``: specs or models to rank instead of the default set.
+        calibration_uncertainty: relative 1-sigma uncertainty of the probe photon numbers
+            (None or 0: probes taken as exact).
+        gate_duration: gate or counting-window duration in seconds (dark count rate).
+        weighting: "deviance" (maximum likelihood) or "pearson".
+        bootstrap: parametric-bootstrap resamples of the fit (0: none).
+        seed: seeds the cross-validation folds and every bootstrap and simulation.
+        n_jobs: processes to use; 1 computes everything here, >= 2 (or -1: all cores)
+            computes the model-free POVM in one worker process beside the ranking.
+        progress: optional callback ``progress(task, done, total)``.
+    """
+    from povmfit.fitting.workflow.api import rank_and_fit
+
+    scan = as_scan(scan)
+    options = _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed)
+    # refuse what can be refused before any work starts
+    if not (isinstance(model, str) and model.strip().lower() == "auto"):
+        check_identifiable(scan, as_model(model))
+    as_models(candidates)
+    from povmfit.fitting.tomography.model_free import (
+        CROSS_CHECK_SIMULATIONS, RECONSTRUCTION_BOOTSTRAP, povm_reconstruction, reconstructions_under_model,
+        wigner_reconstructions,
+    )
+
+    with _executor(n_jobs) as pool:
+        # a worker process cannot call back into this one: its progress is not reported
+        povm_future = _submit(pool, povm_reconstruction, scan, seed, RECONSTRUCTION_BOOTSTRAP,
+                              None if pool is not None else progress)
+        comparison, result = rank_and_fit(scan, model, calibration_uncertainty, candidates=candidates,
+                                          weighting=weighting, bootstrap=bootstrap, seed=seed, progress=progress)
+        wigner = wigner_reconstructions(scan, seed, RECONSTRUCTION_BOOTSTRAP, progress=progress)
+        reconstruction = povm_future.result()
+        under_model = _submit(pool, reconstructions_under_model, scan, result.predicted, reconstruction, seed)
+        parts = _model_side(scan, result, reconstruction, wigner)
+        expected, spread = under_model.result()
+    from povmfit.fitting.tomography.cross_check import cross_check
+
+    # Under the model the reconstruction of the data is one draw from (expected, spread); the
+    # fit's own parameter uncertainty is added in quadrature.
+    summary = cross_check(
+        expected, np.sqrt(spread**2 + parts["model_stderr"][:, : reconstruction.n_photons] ** 2), reconstruction, wigner["pointwise"],
+        model_wigner=parts["model_pointwise"], reconstruction_stderr=np.zeros_like(reconstruction.stderr),
+    )
+    summary["povm_comparison"] = (
+        f"reconstruction of the data against {CROSS_CHECK_SIMULATIONS} reconstructions of scans simulated from the "
+        "fitted model (same probes, shots and regularisation)"
+    )
+    if wigner["phase_test"] is not None:
+        summary["phase_insensitivity"] = wigner["phase_test"].to_dict()
+    return Characterisation(
+        scan=scan, fit=result, comparison=comparison,
+        model_free=ScanReconstruction.from_parts(scan, reconstruction, wigner),
+        model_theta=parts["model_theta"], model_stderr=parts["model_stderr"],
+        model_wigner_alpha=parts["alpha"], model_wigner=parts["model_wigner"], cross_check=summary, options=options,
+    )
+
+
+def _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed) -> dict:
+    if gate_duration is not None and not gate_duration > 0:
+        raise ArgumentError(f"gate_duration: expected a positive number of seconds, got {gate_duration}")
+    return {
+        "model": model if isinstance(model, str) else getattr(model, "spec", str(model)),
+        "candidates": None if candidates is None else [getattr(c, "spec", c) for c in candidates],
+        "calibration_uncertainty": calibration_uncertainty,
+        "gate_duration_s": gate_duration,
+        "weighting": weighting,
+        "bootstrap": bootstrap,
+        "seed": seed,
     }
-    sheet = datasheet_document(
-        scan, result, options=options, gate_duration_s=args.gate_duration,
-        comparison=comparison.to_dict() if comparison else _single_row(result),
-        verdict=comparison.verdict if comparison else f"{model.spec} fitted as requested (no model comparison).",
-        cross_check=cross["summary"],
-    )
-    if comparison:
-        sheet["likelihood_ratio_tests"] = comparison.tests
-    record = DetectorRecord(
-        model=model,
-        parameters={n: result.values[n] for n in model.parameter_names},
-        covariance=result.covariance[: len(model.parameter_names), : len(model.parameter_names)],
-        gate_duration_s=args.gate_duration,
-        provenance={
-            "software": f"povmfit {povmfit.__version__}",
-            "input_file": str(scan.source),
-            "input_sha256": scan.sha256,
-            "options": options,
-        },
-        bounds=model.bounds(),
-    )
-
-    out_dir = Path(out_dir)
-    files = {}
-    files["datasheet"] = out_dir / "datasheet.json"
-    write_json(files["datasheet"], sheet)
-    files["detector"] = out_dir / "detector.json"
-    save_detector(record, files["detector"])
-    files.update(cross["write"](out_dir))
-    if not getattr(args, "no_report", False):
-        from povmfit.fitting.outputs.report import write_report
-
-        files.update(write_report(out_dir, scan, result, sheet, comparison, cross))
-    return {"datasheet": sheet, "result": result, "comparison": comparison, "files": files}
 
 
-def _rank_and_fit(scan, args):
-    model, comparison = _select_model(scan, args)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", FitNotConverged)
-        result = fit_scan(scan, model, args.calibration_uncertainty, args.weighting,
-                          compute_model=family_compute_model(model) if comparison else None)
-    for warning in caught:
-        print(f"povmfit: warning: {warning.message}", file=sys.stderr)
-    if args.bootstrap:
-        from povmfit.fitting.inference.bootstrap import parametric_bootstrap
+def _model_side(scan, result, reconstruction, wigner) -> dict:
+    """The fitted model where the reconstructions look: its POVM with errors, the pointwise
+    estimator applied to its exact probabilities, and its Wigner values at the points."""
+    from povmfit.fitting.tomography.cross_check import model_pointwise_wigner
+    from povmfit.models import povm_wigner
 
-        boot = parametric_bootstrap(scan, result, args.bootstrap, args.seed, quiet=args.quiet or args.json)
-        boot.pop("estimates")
-        object.__setattr__(result, "bootstrap", boot)
-    return model, comparison, result
+    from povmfit.fitting.outputs.report import curve_cutoff
+
+    # one evaluation of the fitted POVM serves the cross-check and the report's curves (its
+    # columns do not depend on the cutoff)
+    wide, stderr = result.povm_with_errors(max(reconstruction.n_photons, curve_cutoff(scan, result)))
+    theta = wide[:, : reconstruction.n_photons]
+    pointwise, smoothed = wigner["pointwise"], wigner["smoothed"]
+    model_pointwise = None if pointwise is None else model_pointwise_wigner(
+        theta, pointwise, scan.coherent_photons, scan.thermal_photons)
+    alpha = smoothed.alpha if smoothed is not None else (pointwise.alpha if pointwise is not None else None)
+    model_wigner = None if alpha is None else np.asarray(povm_wigner(theta, np.asarray(alpha)))
+    return {"model_theta": wide, "model_stderr": stderr, "model_pointwise": model_pointwise,
+            "alpha": alpha, "model_wigner": model_wigner}
 
 
 def _single_row(result) -> list:
@@ -152,50 +259,32 @@ def _single_row(result) -> list:
     }]
 
 
-def _cross_check_section(scan, result, parts, model_free: ModelFreeJob) -> dict:
-    """Compare the fit with the model-free reconstructions of the same scan; the
-    reconstructions of scans simulated from the fit come from ``model_free``."""
-    from povmfit.fitting.cli.reconstruct import povm_rows, wigner_rows, write_reconstruction_csvs
-    from povmfit.fitting.tomography.cross_check import cross_check, model_pointwise_wigner
+@contextmanager
+def _executor(n_jobs: int):
+    """A one-worker process pool for n_jobs >= 2 (or -1), else None (work done here)."""
+    if n_jobs == -1:
+        n_jobs = os.cpu_count() or 1
+    if not isinstance(n_jobs, int) or n_jobs < 1:
+        raise ArgumentError(f"n_jobs: expected a positive number of processes or -1, got {n_jobs!r}")
+    if n_jobs == 1:
+        yield None
+        return
+    # spawn: a fresh interpreter (JAX's threads do not survive fork)
+    pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+    try:
+        yield pool
+    except BaseException:
+        # the worker's result is no longer wanted: stop it rather than wait for it
+        for process in list(getattr(pool, "_processes", {}).values()):
+            process.terminate()
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
 
-    coherent, thermal = scan.coherent_photons, scan.thermal_photons
-    reconstruction, pointwise, smoothed = parts["reconstruction"], parts["pointwise"], parts["smoothed"]
-    theta_model, theta_se = model_povm_with_errors(result, reconstruction.n_photons)
-    # The Wigner values are compared through the pointwise estimator applied to the exact model.
-    model_pointwise = None if pointwise is None else model_pointwise_wigner(theta_model, pointwise, coherent, thermal)
-    # Under the model the reconstruction of the data is one draw from (theta_expected,
-    # theta_spread); the fit's own parameter uncertainty is added in quadrature.
-    theta_expected, theta_spread = model_free.under_model(scan, result.predicted, reconstruction)
-    summary = cross_check(
-        theta_expected, np.sqrt(theta_spread**2 + theta_se**2), reconstruction, pointwise,
-        model_wigner=model_pointwise, reconstruction_stderr=np.zeros_like(reconstruction.stderr),
-    )
-    summary["povm_comparison"] = (
-        f"reconstruction of the data against {CROSS_CHECK_SIMULATIONS} reconstructions of scans simulated from the "
-        "fitted model (same probes, shots and regularisation)"
-    )
-    if parts["phase_test"] is not None:
-        summary["phase_insensitivity"] = parts["phase_test"].to_dict()
-    grid = smoothed.alpha if smoothed is not None else (pointwise.alpha if pointwise is not None else None)
-    model_wigner = None if grid is None else np.asarray(povm_wigner(theta_model, np.asarray(grid)))
 
-    def write(out_dir):
-        extra = []
-        if model_wigner is not None:
-            extra = wigner_rows(grid, model_wigner, np.zeros_like(model_wigner), "model")
-        return write_reconstruction_csvs(
-            out_dir, reconstruction, pointwise, smoothed,
-            model_rows=povm_rows(theta_model, theta_se, "model"), model_wigner_rows=extra,
-        )
-
-    return {
-        "summary": summary,
-        "reconstruction": reconstruction,
-        "pointwise": pointwise,
-        "smoothed": smoothed,
-        "model_theta": theta_model,
-        "model_stderr": theta_se,
-        "model_wigner": model_wigner,
-        "model_wigner_alpha": grid,
-        "write": write,
-    }
+def _submit(pool, function, *args) -> Future:
+    if pool is not None:
+        return pool.submit(function, *args)
+    done: Future = Future()
+    done.set_result(function(*args))
+    return done

@@ -1,0 +1,147 @@
+"""``povmfit simulate``: a synthetic scan from a fitted detector and a grid of probes.
+
+Probe grid (``--probes GRID``), our compact syntax::
+
+    coherent=0:4:21;thermal=0,0.5,1
+
+``NAME=VALUES`` parts are joined by ``;``; NAME is ``coherent`` (|alpha|^2) or ``thermal``
+(nbar), both mean photons per shot. VALUES is a comma list (``0,0.5,1``) or
+``START:STOP:COUNT`` (COUNT evenly spaced values from START to STOP inclusive); a missing
+NAME means 0. The probes are every combination of the coherent and thermal values (the
+example gives 21 x 3 = 63 probes). Several grids can be joined with ``|``, e.g.
+``coherent=0:4:9|thermal=0.5,1``.
+
+GRID may instead be a CSV file with columns ``coherent_photons`` and ``thermal_photons``
+(optional ``probe`` labels), one probe per row.
+
+Every probe gets ``--shots`` shots, drawn from the detector's outcome probabilities
+(multinomial); the scan is written in the wide scan layout (CSV or Parquet by suffix).
+"""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import numpy as np
+
+from povmfit.fitting.data.errors import ArgumentError, InputFileError
+from povmfit.fitting.data.files import data_rows, read_csv_rows
+
+__all__ = ["parse_probe_grid", "load_probe_file", "simulate_counts", "simulate_scan", "MAX_PROBES"]
+
+MAX_PROBES = 100_000
+
+
+def _grid_values(text: str, where: str) -> np.ndarray:
+    try:
+        if ":" in text:
+            start, stop, count = text.split(":")
+            n = int(count)
+            if n < 1:
+                raise ValueError
+            values = np.linspace(float(start), float(stop), n)
+        else:
+            values = np.array([float(v) for v in text.split(",")])
+    except ValueError:
+        raise ArgumentError(f"{where}: {text!r} is neither a comma list nor START:STOP:COUNT") from None
+    if not np.all(np.isfinite(values)) or values.min() < 0:
+        raise ArgumentError(f"{where}: photon numbers must be finite and >= 0, got {text!r}")
+    return values
+
+
+def parse_probe_grid(spec: str) -> tuple[np.ndarray, np.ndarray]:
+    """Grid text -> (coherent, thermal) arrays of equal length (see module docstring)."""
+    coherent, thermal = [], []
+    for block in spec.split("|"):
+        values = {"coherent": np.zeros(1), "thermal": np.zeros(1)}
+        seen = set()
+        for part in filter(None, (p.strip() for p in block.split(";"))):
+            name, sep, text = part.partition("=")
+            name = name.strip().lower()
+            where = f"probes {spec!r}"
+            if not sep or name not in values:
+                raise ArgumentError(f"{where}: expected coherent=VALUES or thermal=VALUES, got {part!r}")
+            if name in seen:
+                raise ArgumentError(f"{where}: {name} given twice in one grid")
+            seen.add(name)
+            values[name] = _grid_values(text.strip(), where)
+        if not seen:
+            raise ArgumentError(f"probes {spec!r}: empty grid")
+        a, t = np.meshgrid(values["coherent"], values["thermal"], indexing="ij")
+        coherent.append(a.ravel())
+        thermal.append(t.ravel())
+    coherent, thermal = np.concatenate(coherent), np.concatenate(thermal)
+    if coherent.size > MAX_PROBES:
+        raise ArgumentError(f"probes {spec!r}: {coherent.size} probes, at most {MAX_PROBES}")
+    return coherent, thermal
+
+
+def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
+    """Probe list CSV -> (coherent, thermal, labels or None). InputFileError names line and column."""
+    path = Path(path)
+    rows = read_csv_rows(path, "probe file")
+    header = [h.strip() for h in rows[0]] if rows else []
+    allowed = {"coherent_photons", "thermal_photons", "probe"}
+    if "coherent_photons" not in header or "thermal_photons" not in header:
+        raise InputFileError(f"{path}: line 1: need columns coherent_photons and thermal_photons")
+    unknown = [h for h in header if h not in allowed]
+    if unknown:
+        raise InputFileError(f"{path}: line 1: unknown column(s) {', '.join(unknown)}")
+    columns = {name: [] for name in header}
+    for line, row in data_rows(rows, path):
+        for name, cell in zip(header, row):
+            if name == "probe":
+                columns[name].append(cell.strip())
+                continue
+            try:
+                value = float(cell)
+            except ValueError:
+                value = math.nan
+            if not math.isfinite(value) or value < 0:
+                raise InputFileError(f"{path}: line {line}, column {name!r}: expected a number >= 0, got {cell!r}")
+            columns[name].append(value)
+    if not columns["coherent_photons"]:
+        raise InputFileError(f"{path}: no probes")
+    labels = columns.get("probe")
+    return np.array(columns["coherent_photons"]), np.array(columns["thermal_photons"]), labels
+
+
+def simulate_counts(emulator, coherent, thermal, shots: int, seed=None) -> np.ndarray:
+    """Counts (n_probes, n_outcomes): Multinomial(shots, q_p) for every probe p.
+
+    q_p uses one detector (one ensemble member, chosen with ``seed``) for all probes.
+    """
+    from povmfit.models import choose_cutoff, probe_distributions, sample_counts
+
+    rng = np.random.default_rng(seed)
+    n_photons = choose_cutoff(coherent, thermal)
+    distributions = np.asarray(probe_distributions(coherent, thermal, n_photons))
+    member = int(rng.integers(emulator.n_members)) if emulator.n_members > 1 else 0
+    q = distributions @ emulator.povms(n_photons)[member].T
+    return sample_counts(q, shots, rng)
+
+
+def simulate_scan(detector, probes, shots: int, seed=None, povm_source: str = "auto"):
+    """A synthetic :class:`Scan`: ``shots`` multinomial draws per probe from a detector.
+
+    Args:
+        detector: an :class:`Emulator`, or the path of a detector.json or povm.csv.
+        probes: a grid spec (see the module docstring), the path of a probe CSV file, or a
+            pair of arrays (coherent_photons, thermal_photons), mean photons per shot.
+        shots: shots per probe (>= 1); seed: random seed (None: fresh randomness).
+    """
+    from povmfit.fitting.data.scan import scan_from_arrays
+    from povmfit.fitting.emulation.emulator import Emulator
+
+    if isinstance(shots, bool) or not isinstance(shots, int) or shots < 1:
+        raise ArgumentError(f"shots: expected a whole number >= 1, got {shots!r}")
+    labels = None
+    if isinstance(probes, (str, Path)) and Path(probes).is_file():
+        coherent, thermal, labels = load_probe_file(probes)
+    elif isinstance(probes, str):
+        coherent, thermal = parse_probe_grid(probes)
+    else:
+        coherent, thermal = (np.asarray(v, dtype=float).ravel() for v in probes)
+    emulator = detector if isinstance(detector, Emulator) else Emulator.from_file(detector, povm_source)
+    counts = simulate_counts(emulator, coherent, thermal, shots, seed)
+    return scan_from_arrays(coherent, thermal, counts, labels=labels, source=f"simulate {detector}")
