@@ -75,17 +75,19 @@ def run_timed(command: list[str], env: dict, cwd: Path, timeout: float = 600.0) 
     The command gets its own process group; after it exits, any helper process it left
     behind is waited for (up to 30 s, then ended), so it cannot slow the next measurement.
     """
-    started = time.perf_counter()
-    process = subprocess.Popen(command, env=env, cwd=cwd, stdout=subprocess.DEVNULL,
-                               stderr=subprocess.PIPE, start_new_session=True)
-    try:
-        _, stderr = process.communicate(timeout=timeout)
-    except subprocess.TimeoutExpired:
-        os.killpg(process.pid, signal.SIGKILL)
-        _, stderr = process.communicate()
-    seconds = time.perf_counter() - started
-    _wait_for_group(process.pid)
-    lines = stderr.decode(errors="replace").strip().splitlines()
+    with tempfile.TemporaryFile() as stderr:  # not a pipe: a helper holding it open must not delay us
+        started = time.perf_counter()
+        process = subprocess.Popen(command, env=env, cwd=cwd, stdout=subprocess.DEVNULL, stderr=stderr,
+                                   start_new_session=True)
+        try:
+            process.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            os.killpg(process.pid, signal.SIGKILL)
+            process.wait()
+        seconds = time.perf_counter() - started
+        _wait_for_group(process.pid)
+        stderr.seek(0)
+        lines = stderr.read().decode(errors="replace").strip().splitlines()
     error = (lines[-1] if lines else f"exit code {process.returncode}") if process.returncode else ""
     return Result(seconds, process.returncode, error)
 

@@ -125,10 +125,10 @@ def run() -> list[dict]:
     scan = scans[0]
     result = fit_scan(scan, experiment.model)
     started = time.perf_counter()
-    parametric_bootstrap(scan, result, BOOTSTRAP, seed=7, quiet=True)
+    parametric_bootstrap(scan, result, BOOTSTRAP, seed=7)
     our_boot_first = time.perf_counter() - started
     started = time.perf_counter()  # the compiled refit is cached: a second bootstrap of this model
-    boot = parametric_bootstrap(scan, result, BOOTSTRAP, seed=8, quiet=True)
+    boot = parametric_bootstrap(scan, result, BOOTSTRAP, seed=8)
     our_boot = time.perf_counter() - started
     # baseline: Python loop of refits on counts resampled from the baseline's own fit
     x_hat, _ = baseline.fit(np.asarray(scan.counts, float))

@@ -6,7 +6,8 @@ from __future__ import annotations
 import html
 import math
 
-__all__ = ["format_number", "format_uncertain", "text_table", "html_table", "html_block"]
+__all__ = ["format_number", "format_uncertain", "format_quantity", "format_p_value", "text_table", "html_table",
+           "html_block", "FIGURE_UNITS"]
 
 
 def format_number(value, digits: int = 4) -> str:
@@ -27,6 +28,41 @@ def format_uncertain(value, stderr, digits: int = 2) -> str:
     if place > 0:
         return f"{value:.{place}f} ± {stderr:.{place}f}"
     return f"{value:.6g} ± {stderr:.{digits}g}"
+
+
+_PREFIXES = ((1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"))
+# display unit of each datasheet figure: "%" for probabilities, "Hz" (with SI prefixes) for rates
+FIGURE_UNITS = {
+    "efficiency": "%", "vacuum_click_probability": "%", "crosstalk_probability": "%",
+    "dark_click_probability_per_pixel": "%", "dark_count_rate_hz": "Hz", "dark_count_rate_per_pixel_hz": "Hz",
+}
+
+
+def format_quantity(value, stderr, unit: str) -> str:
+    """``value ± stderr`` in a display unit: ``"%"`` shows a fraction in per cent
+    (``61.94 ± 0.05 %``), ``"Hz"`` (or any SI unit) takes the prefix that suits the value
+    (``164.2 ± 3.5 kHz``); an empty unit leaves the number as it is."""
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    if unit == "%":
+        scale, shown = 100.0, "%"
+    elif unit:
+        magnitude = abs(value) if value else abs(stderr or 0.0)
+        scale, prefix = next(((1 / f, p) for f, p in _PREFIXES if magnitude >= f), (1e9, "n"))
+        shown = prefix + unit
+    else:
+        scale, shown = 1.0, ""
+    text = format_uncertain(value * scale, None if stderr is None else stderr * scale)
+    return f"{text} {shown}".rstrip()
+
+
+def format_p_value(p) -> str:
+    """One format for p-values everywhere: three significant digits, ``< 1e-300`` at the floor."""
+    if p is None or (isinstance(p, float) and math.isnan(p)):
+        return "n/a"
+    if p < 1e-300:
+        return "< 1e-300"
+    return f"{p:.3g}"
 
 
 def text_table(header: list[str], rows: list[list[str]]) -> str:

@@ -225,3 +225,22 @@ def test_squeezed_vacuum_matches_fock_space_squeeze_operator(fock):
     state = scipy.linalg.expm(0.5 * r * (a @ a - a.T @ a.T))[:, 0]
     got = np.asarray(squeezed_vacuum_distribution(math.sinh(r) ** 2, 60))
     np.testing.assert_allclose(got, np.abs(state[:60]) ** 2, rtol=0, atol=1e-13)
+
+
+def test_scaled_probe_distribution_slope_matches_jax_autodiff():
+    # Source: JAX forward-mode differentiation of the JAX probe distributions (an independent
+    # computation) against the generating-function identity dP_n/ds = (n P_n - (n+1) P_{n+1})/s.
+    import jax
+
+    from povmfit.fitting.inference.objective import scaled_probe_distributions
+    from povmfit.models import probe_distributions
+
+    coherent = np.array([0.0, 0.3, 2.0, 6.0, 1.0])
+    thermal = np.array([0.0, 0.0, 0.5, 1.0, 0.0])
+    n = 60
+    for scale in (0.82, 1.0, 1.17):
+        values, slope = scaled_probe_distributions(coherent, thermal, scale, n)
+        reference = jax.jacfwd(lambda s: probe_distributions(s * coherent, s * thermal, n))(scale)
+        np.testing.assert_allclose(values, np.asarray(probe_distributions(scale * coherent, scale * thermal, n)),
+                                   rtol=0, atol=1e-14)
+        np.testing.assert_allclose(slope, np.asarray(reference), rtol=0, atol=1e-12)

@@ -34,7 +34,7 @@ from povmfit.models import DetectorModel, parse_model_spec
 
 from povmfit.fitting.inference.candidates import candidate_models, family_compute_model, ranking_order
 from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
-from povmfit.fitting.display import format_number, html_block, html_table, text_table
+from povmfit.fitting.display import format_number, format_p_value, html_block, html_table, text_table
 from povmfit.fitting.inference.fit import FitNotConverged, FitResult, fit_scan
 from povmfit.fitting.inference.objective import cell_residuals
 from povmfit.fitting.inference.result import jsonable
@@ -298,13 +298,13 @@ def _verdict(chosen_row, rows, tests, chosen) -> str:
     if not chosen_row["adequate"]:
         return (
             f"No candidate describes the data adequately: the best, {chosen.spec}, has goodness-of-fit "
-            f"p = {chosen_row['p_value']:.2g}; the detector needs a model povmfit does not have."
+            f"p = {format_p_value(chosen_row['p_value'])}; the detector needs a model povmfit does not have."
         )
     needed = [t["feature"] for t in tests if t["alternative"] == chosen.spec and t["feature_needed"]]
     alternatives = [r for r in rows[1:] if r["adequate"]]
     margin = f"; next best {alternatives[0]['model']} at delta BIC {alternatives[0]['bic'] - chosen_row['bic']:.1f}" if alternatives else ""
     features = ", ".join(needed) if needed else "no extra features"
     return (
-        f"{chosen.spec} explains the data (goodness-of-fit p = {chosen_row['p_value']:.2g}, lowest BIC "
+        f"{chosen.spec} explains the data (goodness-of-fit p = {format_p_value(chosen_row['p_value'])}, lowest BIC "
         f"among adequate models{margin}); likelihood-ratio tests require {features}."
     )

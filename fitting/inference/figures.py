@@ -8,7 +8,14 @@ Figures (all per shot unless a unit says otherwise):
   no light (delta-method stderr; interval mapped from the dark parameter's interval).
 - ``dark_count_rate_hz`` (with a gate duration tau): R = -ln(1 - p_vac)/tau, the rate of a
   Poisson dark process giving the observed vacuum click probability per gate.
+- ``dark_click_probability_per_pixel`` (arrays of two or more pixels with dark counts): the
+  fitted per-pixel, per-gate dark click probability d; the whole array's vacuum click
+  probability is 1 - (1 - d)^N.
+- ``dark_count_rate_per_pixel_hz`` (arrays, with a gate): -ln(1 - d)/tau, so the whole
+  array's rate is N times it.
 - ``crosstalk_probability``: probability that one fired pixel (or avalanche) fires another.
+
+Each figure carries a ``meaning`` (one sentence, for datasheets and reports).
 """
 from __future__ import annotations
 
@@ -18,7 +25,16 @@ import numpy as np
 
 from povmfit.models import dark_parameter_names
 
-__all__ = ["figures", "entry", "CALIBRATION_EXCLUDED"]
+__all__ = ["figures", "entry", "CALIBRATION_EXCLUDED", "MEANINGS"]
+
+MEANINGS = {
+    "efficiency": "system detection efficiency: probability that a photon at the reference plane is detected",
+    "vacuum_click_probability": "probability of any click (non-zero outcome) per gate with no light, whole detector",
+    "dark_count_rate_hz": "dark count rate of the whole detector: -ln(1 - vacuum click probability) / gate",
+    "dark_click_probability_per_pixel": "probability that one pixel clicks in a gate with no light",
+    "dark_count_rate_per_pixel_hz": "dark count rate of one pixel: -ln(1 - per-pixel dark click probability) / gate",
+    "crosstalk_probability": "probability that a fired pixel (or avalanche) fires another one",
+}
 
 CALIBRATION_EXCLUDED = (
     "probe photon numbers taken as exact: the efficiency uncertainty excludes the probe-calibration "
@@ -72,7 +88,16 @@ def figures(result, gate_duration_s: float | None = None) -> dict:
         out["dark_count_rate_hz"] = entry(
             rate(p_vac), se_rate, (rate(ci_vac[0]), rate(ci_vac[1])), gate_duration_s=float(gate_duration_s)
         )
+    if dark == "dark_probability" and model.size >= 2:
+        d, se_d, ci_d = result.values[dark], result.stderr[dark], result.ci95[dark]
+        out["dark_click_probability_per_pixel"] = entry(d, se_d, ci_d, pixels=int(model.size))
+        if gate_duration_s:
+            out["dark_count_rate_per_pixel_hz"] = entry(
+                rate(d), se_d / (1 - d) / gate_duration_s, (rate(ci_d[0]), rate(ci_d[1])),
+                gate_duration_s=float(gate_duration_s), pixels=int(model.size))
     if "crosstalk_probability" in result.values:
         name = "crosstalk_probability"
         out[name] = entry(result.values[name], result.stderr[name], result.ci95[name], ci_method=result.ci_method[name])
+    for name, figure in out.items():
+        figure["meaning"] = MEANINGS[name]
     return out

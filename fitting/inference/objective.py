@@ -14,9 +14,11 @@ appended (a Gaussian prior on the probe scale s).
 
 ``FitProblem`` holds the one residual function (and its exact Jacobian and the Fisher
 information) of a model on a scan; the fit, its profile-likelihood intervals and its
-bootstrap refits all minimise it through ``solver.solve``. The compiled JAX parts are cached
-per (model, cutoff) and take the data as arguments, so refits (bootstrap, profiles,
-cross-validation) reuse the compiled code.
+bootstrap refits all minimise it through ``solver.solve``. The one compiled JAX part is the
+POVM and its Jacobian, cached per (model, cutoff): the probe distributions (and, with a
+calibration prior, their exact derivative in the probe scale) are formed in numpy, so
+refits (bootstrap, profiles, cross-validation), the datasheet and the cross-check all reuse
+that one program.
 """
 from __future__ import annotations
 
@@ -30,7 +32,7 @@ from povmfit.fitting.data.errors import ArgumentError
 from povmfit.models import DetectorModel, choose_cutoff, null_value, probe_distributions, probe_distributions_numpy
 
 __all__ = [
-    "predicted_probabilities", "compiled", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
+    "predicted_probabilities", "scaled_probe_distributions", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
     "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative", "FitProblem",
 ]
 
@@ -64,20 +66,19 @@ def predicted_probabilities(model: DetectorModel, params, scale, coherent, therm
     return distributions @ theta.T
 
 
-@lru_cache(maxsize=64)
-def compiled(model: DetectorModel, n_photons: int):
-    """Compiled ``(x, coherent, thermal) -> (q[p, k], dq/dx[p, k, i])`` for fits with a
-    probe-calibration prior: ``x`` is the model parameters followed by the probe scale s, and
-    the probe photon numbers are multiplied by s (cached per model and cutoff)."""
-    n_model = len(model.parameter_names)
+def scaled_probe_distributions(coherent, thermal, scale: float, n_photons: int):
+    """P[p, n] of the probes with both photon numbers multiplied by ``scale``, and its exact
+    derivative d P[p, n] / d scale, shapes (n_probes, n_photons) each, in numpy.
 
-    def probabilities(x, coherent, thermal):
-        return predicted_probabilities(model, x[:n_model], x[n_model], coherent, thermal, n_photons)
-
-    def probabilities_and_jacobian(x, coherent, thermal):
-        return probabilities(x, coherent, thermal), jax.jacfwd(probabilities)(x, coherent, thermal)
-
-    return jax.jit(probabilities_and_jacobian)
+    Scaling a displaced thermal state (A, N) -> (sA, sN) maps its generating function
+    G(z) to G(1 + s(z - 1)), so dG/ds = ((z - 1)/s) dG/dz and, term by term,
+    dP_n/ds = (n P_n - (n + 1) P_{n+1}) / s.
+    """
+    extended = probe_distributions_numpy(scale * np.asarray(coherent, float), scale * np.asarray(thermal, float),
+                                         n_photons + 1)
+    n = np.arange(n_photons)
+    distributions = extended[:, :n_photons]
+    return distributions, (n * distributions - (n + 1) * extended[:, 1:]) / scale
 
 
 _DISTRIBUTIONS: dict = {}
@@ -190,11 +191,18 @@ class FitProblem:
 
     def _compiled_predictions(self, compute_model, n_photons):
         """full parameter vector -> (q[p, k], dq/dx[p, k, i]) for every probe."""
-        if self.calibrated:  # the probe distributions move with the fitted probe scale
-            predictions = compiled(compute_model, n_photons)
-            return lambda full: predictions(full, self.coherent, self.thermal)
-        # exact probes: constant distributions times the compiled POVM and its Jacobian
         povm = povm_and_jacobian(compute_model, n_photons)
+        if self.calibrated:
+            # the probe distributions move with the fitted probe scale s (the last entry):
+            # q = P(s) theta^T, dq/dx = P(s) dtheta/dx, dq/ds = (dP/ds) theta^T
+            def predictions(full):
+                theta, jac = (np.asarray(a) for a in povm(full[:-1]))
+                distributions, slope = scaled_probe_distributions(self.coherent, self.thermal, full[-1], n_photons)
+                jac = np.concatenate([np.tensordot(distributions, jac, axes=(1, 1)), (slope @ theta.T)[..., None]], axis=-1)
+                return distributions @ theta.T, jac
+
+            return predictions
+        # exact probes: constant distributions times the compiled POVM and its Jacobian
         distributions = fixed_probe_distributions(self.coherent, self.thermal, n_photons)
 
         def predictions(full):

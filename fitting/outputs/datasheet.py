@@ -61,11 +61,13 @@ def parameters_block(result) -> dict:
     return block
 
 
-def datasheet_document(scan, result, *, options: dict, gate_duration_s=None, comparison=None, verdict=None, cross_check=None) -> dict:
+def datasheet_document(scan, result, *, options: dict, gate_duration_s=None, comparison=None, verdict=None, cross_check=None,
+                       conditions=None) -> dict:
     """The ``povmfit.datasheet/1`` document (plain JSON-able data)."""
     return {
         "schema": SCHEMA,
         "model": model_block(result.model),
+        "conditions": dict(conditions or {}),
         "verdict": verdict,
         "parameters": parameters_block(result),
         "correlation": {"names": list(result.names), "matrix": np.round(result.correlation, 6).tolist()},

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+from os import PathLike
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import contextmanager
 from dataclasses import dataclass
@@ -21,6 +22,7 @@ import numpy as np
 import povmfit
 from povmfit.fitting.data.detector_file import DetectorRecord
 from povmfit.fitting.data.errors import ArgumentError
+from povmfit.fitting.data.metadata import metadata_for_scan
 from povmfit.fitting.data.scan import Scan
 from povmfit.fitting.display import format_uncertain, html_block, html_table, text_table
 from povmfit.fitting.inference.compare import Comparison
@@ -53,6 +55,9 @@ class Characterisation:
             ``tomography.cross_check``), with its verdict.
         options: the analysis options (calibration_uncertainty, gate_duration_s, weighting,
             bootstrap, seed, model, candidates), as recorded in the provenance.
+        metadata: conditions and identity of the measurement (device, serial, wavelength_nm,
+            temperature_k, bias_current_ua, ...; see ``data.metadata``), from the scan's
+            sidecar file and the ``metadata`` argument.
     """
 
     scan: Scan
@@ -65,6 +70,7 @@ class Characterisation:
     model_wigner: np.ndarray | None
     cross_check: dict
     options: dict
+    metadata: dict
 
     @property
     def reconstruction(self):
@@ -89,7 +95,7 @@ class Characterisation:
         sheet = datasheet_document(
             self.scan, self.fit, options=self.options, gate_duration_s=self.options["gate_duration_s"],
             comparison=self.comparison.rows() if self.comparison else _single_row(self.fit),
-            verdict=self.verdict, cross_check=self.cross_check,
+            verdict=self.verdict, cross_check=self.cross_check, conditions=self.metadata,
         )
         if self.comparison is not None:
             sheet["likelihood_ratio_tests"] = self.comparison.tests
@@ -100,7 +106,7 @@ class Characterisation:
         return self.fit.to_detector(
             gate_duration_s=self.options["gate_duration_s"],
             provenance={"software": f"povmfit {povmfit.__version__}", "input_file": str(self.scan.source),
-                        "input_sha256": self.scan.sha256, "options": self.options},
+                        "input_sha256": self.scan.sha256, "options": self.options, "metadata": self.metadata},
         )
 
     def write(self, out_dir, report: bool = True) -> dict:
@@ -151,7 +157,7 @@ class Characterisation:
 
 def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty=None, gate_duration=None,
                  weighting: str = "deviance", bootstrap: int = 0, seed: int = 0, n_jobs: int = 1,
-                 progress=None) -> Characterisation:
+                 metadata: dict | None = None, progress=None) -> Characterisation:
     """Characterise a detector from one scan: rank the candidate models (``model="auto"``) or
     fit the given one, reconstruct the POVM and the Wigner values model-free, cross-check.
 
@@ -167,10 +173,13 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
         seed: seeds the cross-validation folds and every bootstrap and simulation.
         n_jobs: processes to use; 1 computes everything here, >= 2 (or -1: all cores)
             computes the model-free POVM in one worker process beside the ranking.
+        metadata: conditions of the measurement ({"wavelength_nm": 1550, "device": ...});
+            a sidecar ``SCAN.meta.json``/``.toml`` beside a scan file is read first.
         progress: optional callback ``progress(task, done, total)``.
     """
     from povmfit.fitting.workflow.api import rank_and_fit
 
+    conditions = metadata_for_scan(scan if isinstance(scan, (str, PathLike)) else _source_file(scan), metadata)
     scan = as_scan(scan)
     options = _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed)
     # refuse what can be refused before any work starts
@@ -197,13 +206,16 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
 
     # Under the model the reconstruction of the data is one draw from (expected, spread); the
     # fit's own parameter uncertainty is added in quadrature.
+    # The POVM p-value is calibrated on the simulated reconstructions themselves.
     summary = cross_check(
         expected, np.sqrt(spread**2 + parts["model_stderr"][:, : reconstruction.n_photons] ** 2), reconstruction, wigner["pointwise"],
         model_wigner=parts["model_pointwise"], reconstruction_stderr=np.zeros_like(reconstruction.stderr),
+        null_draws=getattr(under_model.result(), "draws", None),
     )
     summary["povm_comparison"] = (
-        f"reconstruction of the data against {CROSS_CHECK_SIMULATIONS} reconstructions of scans simulated from the "
-        "fitted model (same probes, shots and regularisation)"
+        f"reconstruction of the data ({reconstruction.method.replace('_', ' ')}) against {CROSS_CHECK_SIMULATIONS} "
+        "reconstructions of scans simulated from the fitted model (same probes, shots, estimator and regularisation); "
+        "p-value from the distribution of the statistic over those simulations"
     )
     if wigner["phase_test"] is not None:
         summary["phase_insensitivity"] = wigner["phase_test"].to_dict()
@@ -212,7 +224,14 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
         model_free=ScanReconstruction.from_parts(scan, reconstruction, wigner),
         model_theta=parts["model_theta"], model_stderr=parts["model_stderr"],
         model_wigner_alpha=parts["alpha"], model_wigner=parts["model_wigner"], cross_check=summary, options=options,
+        metadata=conditions,
     )
+
+
+def _source_file(scan):
+    """The file a Scan was loaded from, when it still exists (for its metadata sidecar)."""
+    source = Path(getattr(scan, "source", ""))
+    return source if getattr(scan, "sha256", None) and source.is_file() else None
 
 
 def _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed) -> dict:
@@ -238,8 +257,9 @@ def _model_side(scan, result, reconstruction, wigner) -> dict:
     from povmfit.fitting.outputs.report import curve_cutoff
 
     # one evaluation of the fitted POVM serves the cross-check and the report's curves (its
-    # columns do not depend on the cutoff)
-    wide, stderr = result.povm_with_errors(max(reconstruction.n_photons, curve_cutoff(scan, result)))
+    # columns do not depend on the cutoff); at the fit's own cutoff or more, so that the
+    # program compiled for the datasheet figures serves here too
+    wide, stderr = result.povm_with_errors(max(reconstruction.n_photons, curve_cutoff(scan, result), result.n_photons))
     theta = wide[:, : reconstruction.n_photons]
     pointwise, smoothed = wigner["pointwise"], wigner["smoothed"]
     model_pointwise = None if pointwise is None else model_pointwise_wigner(
