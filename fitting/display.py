@@ -6,7 +6,7 @@ from __future__ import annotations
 import html
 import math
 
-__all__ = ["format_number", "format_uncertain", "format_quantity", "format_p_value", "text_table", "html_table",
+__all__ = ["format_number", "format_uncertain", "format_quantity", "format_interval", "format_p_value", "text_table", "html_table",
            "html_block", "FIGURE_UNITS"]
 
 
@@ -27,7 +27,7 @@ def format_uncertain(value, stderr, digits: int = 2) -> str:
     place = digits - 1 - math.floor(math.log10(abs(stderr)))
     if place > 0:
         return f"{value:.{place}f} ± {stderr:.{place}f}"
-    return f"{value:.6g} ± {stderr:.{digits}g}"
+    return f"{round(value, place):.0f} ± {round(stderr, place):.0f}"
 
 
 _PREFIXES = ((1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"))
@@ -38,20 +38,38 @@ FIGURE_UNITS = {
 }
 
 
+def _scale_and_unit(value, stderr, unit: str) -> tuple[float, str]:
+    if unit == "%":
+        return 100.0, "%"
+    if unit:
+        magnitude = abs(value) if value else abs(stderr or 0.0)
+        scale, prefix = next(((1 / f, p) for f, p in _PREFIXES if magnitude >= f), (1e9, "n"))
+        return scale, prefix + unit
+    return 1.0, ""
+
+
+def format_interval(lo, hi, stderr, unit: str, reference=None) -> str:
+    """``[lo, hi] unit`` with the decimals ``format_quantity`` gives a value of uncertainty
+    ``stderr`` (and the unit prefix chosen for ``reference``, default the midpoint)."""
+    if lo is None or hi is None or not (math.isfinite(lo) and math.isfinite(hi)):
+        return "n/a"
+    reference = (lo + hi) / 2 if reference is None else reference
+    scale, shown = _scale_and_unit(reference, stderr, unit)
+    if stderr and math.isfinite(stderr) and stderr > 0:
+        place = max(1 - math.floor(math.log10(abs(stderr * scale))), 0)
+        return f"[{lo * scale:.{place}f}, {hi * scale:.{place}f}] {shown}".rstrip()
+    return f"[{lo * scale:.4g}, {hi * scale:.4g}] {shown}".rstrip()
+
+
 def format_quantity(value, stderr, unit: str) -> str:
     """``value ± stderr`` in a display unit: ``"%"`` shows a fraction in per cent
     (``61.94 ± 0.05 %``), ``"Hz"`` (or any SI unit) takes the prefix that suits the value
     (``164.2 ± 3.5 kHz``); an empty unit leaves the number as it is."""
     if value is None or not math.isfinite(value):
         return "n/a"
-    if unit == "%":
-        scale, shown = 100.0, "%"
-    elif unit:
-        magnitude = abs(value) if value else abs(stderr or 0.0)
-        scale, prefix = next(((1 / f, p) for f, p in _PREFIXES if magnitude >= f), (1e9, "n"))
-        shown = prefix + unit
-    else:
-        scale, shown = 1.0, ""
+    scale, shown = _scale_and_unit(value, stderr, unit)
+    if stderr is None:
+        return f"{value * scale:.4g} {shown}".rstrip()
     text = format_uncertain(value * scale, None if stderr is None else stderr * scale)
     return f"{text} {shown}".rstrip()
 

@@ -2,6 +2,7 @@
 text, and a page that a real headless browser renders into a non-trivial picture."""
 from __future__ import annotations
 
+import html
 import importlib.util
 import re
 import shutil
@@ -59,8 +60,10 @@ def report_inputs(scan_path):
 
     wide, se = result.povm_with_errors(max(recon.n_photons, curve_cutoff(scan, result)))
     theta, se = wide[:, : recon.n_photons], se[:, : recon.n_photons]
-    summary = {"verdict": "test verdict <b>not bold</b>",
-               "povm": {"max_abs_z": 1.5, "agrees": True, "z": [[0.5] * 5] * 3}}
+    summary = {"verdict": "test verdict <b>not bold</b>", "level": 0.01,
+               "povm": {"chi_square": 12.25, "dof": 10, "p_value": 0.27, "max_abs_z": 1.5,
+                        "largest": {"outcome": 1, "photons": 3, "z": 1.5}, "photons_compared": [0, 1, 2, 3, 4],
+                        "z": [[0.5] * 5] * 3}}
     sheet = datasheet_document(scan, result, options={"model": "auto", "note": "<script>alert(1)</script>"},
                                comparison=comparison.rows(), verdict=comparison.verdict, cross_check=summary)
     from povmfit.fitting.tomography.pointwise_wigner import pointwise_wigner, smoothed_wigner
@@ -106,7 +109,10 @@ def test_write_report_directly_escapes_text_and_writes_plots(direct_report):
     assert "<script>" not in page and "&lt;script&gt;alert(1)&lt;/script&gt;" in page
     assert "&lt;b&gt;not bold&lt;/b&gt;" in page
     assert "points: pointwise values from displaced-thermal probes" in page  # alpha = 0 and 1 have 2+ levels
-    assert "15 numbers (see datasheet.json)" in page  # a long nested list is summarised, not dumped
+    # the cross-check as a table of comparisons, not a dump of keys
+    assert "POVM: model-free reconstruction of the data against the fitted model" in page
+    assert "<td>n = 0..4</td><td>12.2</td><td>10</td><td>0.27</td>" in page
+    assert "povm.z" not in page and "largest.photons" not in page
     assert "probe photon numbers taken as exact" in page  # the calibration note (no --calibration-uncertainty)
     assert "&lt;i&gt;dark&lt;/i&gt;" in page and "<i>dark</i>" not in page  # probe label on the residual axis
     for name in ("outcome_probabilities", "residuals", "povm", "wigner"):
@@ -226,3 +232,70 @@ def test_fit_command_writes_report_that_renders(tmp_path):
     check_page(page_path.read_text())
     assert (out / "plots" / "wigner.svg").is_file()
     _check_screenshot(page_path, tmp_path)
+
+
+# Layout probe run inside the browser: elements that stick out of the page (outside
+# horizontally scrolling tables) and pairs of upright SVG text labels whose boxes overlap.
+_LAYOUT_PROBE = """<script>
+(function () {
+  const width = document.documentElement.clientWidth;
+  const scrolls = el => { for (let e = el; e; e = e.parentElement) {
+      const s = getComputedStyle(e).overflowX; if (s === 'auto' || s === 'scroll') return true; } return false; };
+  const outside = [];
+  for (const el of document.body.querySelectorAll('*')) {
+    if (el.closest('svg') || scrolls(el.parentElement)) continue;
+    const r = el.getBoundingClientRect();
+    if (r.width > 0 && r.right > width + 1) outside.push(el.tagName + ': ' + (el.textContent || '').slice(0, 40));
+  }
+  const overlaps = [];
+  for (const svg of document.querySelectorAll('svg')) {
+    const boxes = [...svg.querySelectorAll('text')].filter(t => !/rotate/.test(t.getAttribute('transform') || ''))
+      .map(t => [t.textContent, t.getBoundingClientRect()]);
+    for (let i = 0; i < boxes.length; i++) for (let j = i + 1; j < boxes.length; j++) {
+      const [a, p] = boxes[i], [b, q] = boxes[j];
+      const w = Math.min(p.right, q.right) - Math.max(p.left, q.left), h = Math.min(p.bottom, q.bottom) - Math.max(p.top, q.top);
+      if (w > 1 && h > 1) overlaps.push(a + ' / ' + b);
+    }
+  }
+  const out = document.createElement('pre'); out.id = 'layout-result';
+  out.textContent = JSON.stringify({outside: outside, overlaps: overlaps});
+  document.body.appendChild(out);
+})();
+</script>"""
+
+
+def _layout(page_path, tmp_path, width: int) -> dict:
+    import json
+
+    probe = tmp_path / f"probe-{width}.html"
+    probe.write_text(page_path.read_text().replace("</body>", _LAYOUT_PROBE + "</body>"))
+    command = [_chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+               "--disable-background-networking", "--disable-component-update", "--disable-sync",
+               f"--user-data-dir={tmp_path / f'profile-{width}'}", f"--window-size={width},2000", "--dump-dom",
+               probe.resolve().as_uri()]
+    dom = subprocess.run(command, check=True, capture_output=True, text=True, timeout=120).stdout
+    found = re.search(r'<pre id="layout-result">(.*?)</pre>', dom, re.S)
+    assert found, "the layout probe did not run"
+    return json.loads(html.unescape(found.group(1)))
+
+
+@pytest.mark.parametrize("width", [390, 1280])  # a phone and a desktop window (CSS pixels)
+def test_report_layout_has_nothing_cut_off_or_overlapping(direct_report, tmp_path, width):
+    if _chromium() is None:
+        pytest.skip("no chromium installed: the headless-browser layout check was not run")
+    found = _layout(direct_report["report"], tmp_path, width)
+    assert found["outside"] == [], f"sticking out of a {width} px page: {found['outside'][:5]}"
+    assert found["overlaps"] == [], f"overlapping plot labels: {found['overlaps'][:5]}"
+
+
+def test_layout_probe_sees_overflow_and_overlapping_labels(tmp_path):
+    # the probe itself on a page built with both defects (common practice: a check must be able to fail)
+    if _chromium() is None:
+        pytest.skip("no chromium installed: the headless-browser layout check was not run")
+    page = tmp_path / "bad.html"
+    page.write_text('<!DOCTYPE html><html><body><div style="width:900px">wide</div>'
+                    '<svg width="200" height="50"><text x="10" y="20">label one</text>'
+                    '<text x="14" y="22">label two</text></svg></body></html>')
+    found = _layout(page, tmp_path, 390)
+    assert any(item.startswith("DIV") for item in found["outside"])
+    assert found["overlaps"] == ["label one / label two"]

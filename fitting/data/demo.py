@@ -41,5 +41,5 @@ def generate_demo_scan():
     q /= q.sum(axis=1, keepdims=True)
     rng = np.random.default_rng(DEMO_SEED)
     counts = np.array([rng.multinomial(DEMO_SHOTS, row) for row in q])
-    labels = [f"a{a:g}_n{t:g}" for a, t in zip(coherent, thermal)]
+    labels = [f"coh {a:g} th {t:g}" for a, t in zip(coherent, thermal)]
     return scan_from_arrays(coherent, thermal, counts, labels=labels, source="demo_scan.csv")

@@ -299,7 +299,7 @@ def _panel_boxes(n_panels: int, top: float, left: float, gap: float, height: flo
 
 
 # ----- the figures -------------------------------------------------------------------------------
-def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: int) -> str:
+def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: int, labels=None) -> str:
     """Observed outcome frequencies against probe mean photon number, with model curves.
 
     Args:
@@ -309,9 +309,12 @@ def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: i
             its 1-sigma interval.
         curves: one dict per drawn thermal level: ``level`` (index), ``mean_photons``
             (n_grid,) and ``probability`` (n_grid, n_outcomes) of the fitted model.
+        n_outcomes: series drawn (outcomes, or groups of outcomes); labels: their legend
+            texts (default "0", "1", ...).
     """
     levels, photons = probes["levels"], np.asarray(probes["mean_photons"], dtype=float)
-    outcomes = [{"text": str(k), "colour": outcome_colour(k), "dash": "", "shape": 0} for k in range(n_outcomes)]
+    labels = labels or [str(k) for k in range(n_outcomes)]
+    outcomes = [{"text": labels[k], "colour": outcome_colour(k), "dash": "", "shape": 0} for k in range(n_outcomes)]
     kinds = [{"text": "coherent" if t == 0 else f"thermal part {t:.3g} photons", "dash": _DASHES[j % len(_DASHES)] or "",
               "shape": j, "hollow": j > 0} for j, t in enumerate(levels)]
     parts, legend_height = _legend([("outcome", outcomes), ("probes", kinds)], 70, 8, FIGURE_WIDTH - 80)
@@ -323,8 +326,9 @@ def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: i
     xlim = (float(_inverse(axis.t0 - pad, threshold)), float(_inverse(axis.t1 + pad, threshold)))
     panel = _Panel((70, 24 + legend_height, FIGURE_WIDTH - 84, 440), xlim, (-0.02, 1.02), threshold)
     xticks, minor = _symlog_ticks(top, threshold) if threshold else (_linear_ticks(0.0, xlim[1], 8), ())
-    panel.axes(xticks, _linear_ticks(0.0, 1.0, 5), "probe mean photon number (coherent + thermal, photons per shot)",
-               "outcome probability", x_minor=minor)
+    scale = (f"symmetric-log scale: linear below {threshold:.3g}, logarithmic above" if threshold else "linear scale")
+    panel.axes(xticks, _linear_ticks(0.0, 1.0, 5), f"probe mean photon number, coherent + thermal ({scale})",
+               "outcome probability (linear)", x_minor=minor)
     for curve in curves:
         for k in range(n_outcomes):
             panel.line(curve["mean_photons"], curve["probability"][:, k], outcome_colour(k), 1.3,
@@ -395,7 +399,8 @@ def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_
 
     Only photon numbers where ``constrained`` is True (the probes inform them) are drawn.
     Arrays have shape (n_outcomes, n_photons); ``constrained`` (n_photons,) bool. The panels
-    share both axes; tick labels are drawn on the outer panels.
+    share the horizontal axis; each has its own vertical range (linear), so small elements
+    are not flattened.
     """
     photons = np.flatnonzero(constrained).astype(float)
     n_outcomes = model_theta.shape[0]
@@ -403,17 +408,19 @@ def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_
                {"text": "model, 95 % interval", "colour": "#444", "band": True},
                {"text": "model-free reconstruction", "colour": "#111", "shape": 0, "hollow": True}]
     parts, legend_height = _legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
-    boxes, lowest, height = _panel_boxes(n_outcomes, 50 + legend_height, 70, 24)
+    boxes, lowest, height = _panel_boxes(n_outcomes, 50 + legend_height, 70, 48)
     xlim = (photons.min() - 0.6, photons.max() + 0.6) if photons.size else (-0.6, 0.6)
     xticks = [(v, t) for v, t in _linear_ticks(max(xlim[0], 0), xlim[1], 7) if float(v).is_integer()]
-    yticks = _linear_ticks(0.0, 1.0, 4)
     for k, box in enumerate(boxes):
-        panel = _Panel(box, xlim, (-0.05, 1.05))
-        left = k % 3 == 0
-        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], [(v, t if left else None) for v, t in yticks],
-                   "photon number n" if lowest[k] else None, "P(k | n)" if left else None, f"outcome {k}")
         colour, p = outcome_colour(k), photons.astype(int)
         model, se = model_theta[k, p], model_stderr[k, p]
+        recon, recon_se = reconstruction_theta[k, p], np.nan_to_num(reconstruction_stderr[k, p])
+        ylim = _limits(model - 1.96 * se, model + 1.96 * se, recon - recon_se, recon + recon_se, include=[0.0])
+        ylim = (max(ylim[0], -0.05), min(ylim[1], 1.05))
+        panel = _Panel(box, xlim, ylim)
+        left = k % 3 == 0
+        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], _linear_ticks(*ylim, 4),
+                   "photon number n" if lowest[k] else None, "P(k | n)" if left else None, f"outcome {k}")
         panel.band(photons, model - 1.96 * se, model + 1.96 * se, colour)
         panel.line(photons, model, colour, 1.5)
         value, error = reconstruction_theta[k, p], np.nan_to_num(reconstruction_stderr[k, p])
@@ -423,7 +430,7 @@ def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_
     return _document(FIGURE_WIDTH, height + 30, "Parametric and model-free POVM elements", parts)
 
 
-def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dict]) -> str:
+def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dict], model_points=None) -> str:
     """Wigner functions of the POVM elements along the real axis, one panel per outcome.
 
     Args:
@@ -431,6 +438,9 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
         model_values: (n_outcomes, n_grid) model Wigner values (units 1/area in alpha).
         points: per outcome, dict ``re_alpha``, ``value``, ``stderr`` arrays (pointwise values).
         smoothed: per outcome, dict ``re_alpha``, ``value`` arrays (may be empty).
+        model_points: optional, per outcome, dict ``re_alpha``, ``value``: the pointwise
+            estimator applied to the model's exact probabilities (what the cross-check
+            compares the pointwise values with), drawn as filled diamonds.
     The panels share the horizontal axis; each has its own vertical range.
     """
     re_alpha = np.asarray(re_alpha, dtype=float)
@@ -440,6 +450,8 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
         entries.append({"text": "smoothed (saturation prior)", "colour": "#333", "dash": "6 3"})
     if any(len(p["re_alpha"]) for p in points):
         entries.append({"text": "pointwise (displaced-thermal probes)", "colour": "#111", "shape": 0, "hollow": True})
+    if model_points:
+        entries.append({"text": "model through the pointwise estimator (filled triangles)", "colour": "#444", "shape": 2})
     parts, legend_height = _legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
     boxes, lowest, height = _panel_boxes(n_outcomes, 50 + legend_height, 70, 64)
     xlim = (float(re_alpha.min()), float(re_alpha.max()))
@@ -448,10 +460,11 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
         curve = smoothed[k]["value"] if k < len(smoothed) else []
         dot = points[k] if k < len(points) else {"re_alpha": [], "value": [], "stderr": []}
         value, error = np.asarray(dot["value"], dtype=float), np.asarray(dot["stderr"], dtype=float)
-        ylim = _limits(model_values[k], curve, value - error, value + error, include=[0.0])
+        drawn_model = model_points[k]["value"] if model_points and k < len(model_points) else []
+        ylim = _limits(model_values[k], curve, value - error, value + error, drawn_model, include=[0.0])
         panel = _Panel(box, xlim, ylim)
         panel.axes([(v, t if lowest[k] else None) for v, t in xticks], _linear_ticks(*ylim, 5),
-                   "Re(alpha)  [Im(alpha) = 0]" if lowest[k] else None, "W(alpha)" if k % 3 == 0 else None,
+                   "Re(alpha)  [Im(alpha) = 0], linear" if lowest[k] else None, "W(alpha), linear" if k % 3 == 0 else None,
                    f"outcome {k}")
         colour = outcome_colour(k)
         panel.hline(0, "#888", 0.8)
@@ -463,5 +476,8 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
             x = np.asarray(dot["re_alpha"], dtype=float)
             panel.error_bars(x, value - error, value + error, "#111")
             panel.points(x, value, "#111", 0, hollow=True)
+        if model_points and k < len(model_points) and len(model_points[k]["re_alpha"]):
+            panel.points(np.asarray(model_points[k]["re_alpha"], dtype=float),
+                         np.asarray(model_points[k]["value"], dtype=float), colour, 2)
         parts.append(panel.svg())
     return _document(FIGURE_WIDTH, height + 30, "Wigner functions of the POVM elements along the real axis", parts)

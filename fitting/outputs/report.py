@@ -26,7 +26,6 @@ axis (+ when Re(alpha) = 0); the smoothed curve is drawn from its real-axis poin
 from __future__ import annotations
 
 import html
-import json
 import math
 from pathlib import Path
 
@@ -34,12 +33,14 @@ import numpy as np
 
 from povmfit.models import choose_cutoff, povm_wigner, probe_distributions_numpy
 
+from povmfit.fitting.display import FIGURE_UNITS, format_interval, format_p_value, format_quantity
 from povmfit.fitting.outputs import plots
 from povmfit.fitting.data.files import atomic_write_text
 
 __all__ = ["write_report", "curve_cutoff", "standardised_residuals", "wilson_interval", "model_curves", "wigner_series", "render_html"]
 
 _MAX_CURVE_LEVELS = 4
+_SEPARATE_OUTCOMES = 5  # outcomes drawn one by one in the outcome plot; the rest summed
 _GRID_POINTS = 160
 
 
@@ -67,14 +68,29 @@ def _thermal_levels(scan):
     return levels, index
 
 
-def _probe_points(scan) -> dict:
+def outcome_groups(n_outcomes: int) -> list[tuple[str, list[int]]]:
+    """(label, outcomes) drawn as one series each: outcomes 0..4 one by one and, with more than
+    six outcomes, "5 or more" summed (the plot stays readable)."""
+    if n_outcomes <= _SEPARATE_OUTCOMES + 1:
+        return [(str(k), [k]) for k in range(n_outcomes)]
+    return [(str(k), [k]) for k in range(_SEPARATE_OUTCOMES)] + [
+        (f"{_SEPARATE_OUTCOMES} or more", list(range(_SEPARATE_OUTCOMES, n_outcomes)))]
+
+
+def _grouped(array, groups) -> np.ndarray:
+    """Sum the last axis of ``array`` over each group of outcomes."""
+    return np.stack([np.asarray(array)[..., outcomes].sum(axis=-1) for _, outcomes in groups], axis=-1)
+
+
+def _probe_points(scan, groups) -> dict:
     levels, index = _thermal_levels(scan)
-    lower, upper = wilson_interval(scan.counts, scan.shots[:, None])
+    counts = _grouped(scan.counts, groups)
+    lower, upper = wilson_interval(counts, scan.shots[:, None])
     return {
         "mean_photons": np.asarray(scan.coherent_photons + scan.thermal_photons, dtype=float),
         "thermal_level": index,
         "levels": levels,
-        "frequency": np.asarray(scan.frequencies, dtype=float),
+        "frequency": counts / scan.shots[:, None],
         "lower": lower,
         "upper": upper,
     }
@@ -158,7 +174,7 @@ def _e(value) -> str:
 
 def _num(value, digits: int = 4) -> str:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return "&ndash;"
+        return "n/a"
     if isinstance(value, (bool, np.bool_)):
         return _e(value)
     if isinstance(value, (int, np.integer)):
@@ -178,20 +194,32 @@ def _figure_block(svg: str, caption: str) -> str:
     return f"<figure>{plots.inline_svg(svg)}<figcaption>{_e(caption)}</figcaption></figure>"
 
 
+def _rounded(stderr: float, unit: str) -> str:
+    """An uncertainty part to two significant digits, in the figure's display unit."""
+    return format_quantity(float(f"{stderr:.2g}"), None, unit)
+
+
 def _figures_section(sheet: dict) -> str:
     rows = []
     for name, fig in sheet["figures"].items():
-        ci = fig.get("ci95") or [None, None]
-        rows.append([_e(name.replace("_", " ")), _num(fig["value"]), _num(fig["stderr"]),
-                     _num(fig.get("stat_stderr")), _num(fig.get("calibration_stderr")),
-                     f"[{_num(ci[0])}, {_num(ci[1])}]", _e(fig.get("note") or "")])
-    out = [_table(["figure", "value", "stderr (combined)", "statistical", "calibration", "95 % interval", "note"], rows)]
+        unit = FIGURE_UNITS.get(name, "")
+        parts = ""
+        if fig.get("calibration_stderr"):
+            parts = (f"statistical {_rounded(fig['stat_stderr'], unit)}, "
+                     f"calibration {_rounded(fig['calibration_stderr'], unit)}")
+        rows.append([f"<code>{_e(name)}</code>", _e(fig.get("meaning", "")), _e(format_quantity(fig["value"], fig["stderr"], unit)),
+                     _e(format_interval(*fig["ci95"], fig["stderr"], unit, reference=fig["value"])), _e(parts),
+                     _e(fig.get("note") or "")])
+    out = [_table(["figure", "meaning", "value ± standard error", "95 % interval", "uncertainty parts", "note"], rows, "wide")]
+    out.append('<p class="caption">The same table as <a href="figures.csv">figures.csv</a>, '
+               '<a href="figures.md">figures.md</a> and <a href="figures.tex">figures.tex</a> (numbers in SI base '
+               "units there); every figure with more digits in datasheet.json.</p>")
     calibration = sheet.get("calibration") or {}
     if calibration.get("note"):
         out.append(f'<p class="note"><strong>Calibration:</strong> {_e(calibration["note"])}</p>')
     elif calibration.get("included"):
         out.append(f"<p>Probe calibration uncertainty included: relative 1-sigma "
-                   f"{_num(calibration.get('relative_uncertainty'))}.</p>")
+                   f"{_e(format_quantity(calibration.get('relative_uncertainty'), None, '%'))}.</p>")
     params = [[_e(n), _num(p["value"]), _num(p["stderr"]), _num(p.get("stat_stderr")),
                _num(p.get("calibration_stderr")), f"[{_num(p['ci95'][0])}, {_num(p['ci95'][1])}]",
                _e(p.get("ci_method", ""))] for n, p in sheet["parameters"].items()]
@@ -199,29 +227,46 @@ def _figures_section(sheet: dict) -> str:
     out.append(_table(["parameter", "value", "stderr", "statistical", "calibration", "95 % interval", "interval"], params))
     gof = sheet["goodness_of_fit"]
     converged = "" if gof.get("converged", True) else " <strong>The optimiser did not converge.</strong>"
-    out.append(f"<p>Goodness of fit: deviance {_num(gof['deviance'])} on {_num(gof['dof'])} degrees of freedom, "
-               f"p = {_num(gof['p_value'], 3)}; photon-number cutoff {_num(gof.get('photon_cutoff'))}.{converged}</p>")
+    out.append(f"<p>Goodness of fit: deviance {gof['deviance']:.1f} on {_num(gof['dof'])} degrees of freedom, "
+               f"p = {_e(format_p_value(gof['p_value']))}; photon-number cutoff {_num(gof.get('photon_cutoff'))}.{converged}</p>")
     return "".join(out)
+
+
+_BIC_WINDOW = 10.0  # delta BIC beyond which the evidence against a candidate is very strong
+
+
+def _fixed(value) -> str:
+    """Deviances and information criteria: one decimal."""
+    if value is None or not math.isfinite(value):
+        return "n/a"
+    return _e(f"{value:.1f}")
 
 
 def _verdict_section(sheet: dict, comparison) -> str:
     out = [f'<p class="verdict">{_e(sheet.get("verdict") or "")}</p>']
-    rows = []
+    header = ["model", "k", "deviance", "dof", "p", "AIC", "BIC", "dAIC", "dBIC", "weight", "CV"]
+    shown, hidden = [], []
     for row in sheet.get("model_comparison") or []:
-        rows.append([_e(row["model"]), _num(row.get("parameters")), _num(row.get("deviance")), _num(row.get("dof")),
-                     _num(row.get("p_value"), 3), _num(row.get("aic")), _num(row.get("bic")),
-                     _num(row.get("delta_aic"), 3), _num(row.get("delta_bic"), 3), _num(row.get("weight"), 3),
-                     _num(row.get("cv_deviance"))])
-    out.append(_table(["model", "k", "deviance", "dof", "p", "AIC", "BIC", "dAIC", "dBIC", "weight", "CV"], rows, "wide"))
-    out.append("<p class=\"caption\">k: number of model parameters; p: goodness-of-fit p-value of the deviance; "
-               "CV: held-out-probe predictive deviance (computed for up to three leading candidates within 10 of the best BIC); "
-               "weight: Akaike weight.</p>")
+        cells = [_e(row["model"]), _num(row.get("parameters")), _fixed(row.get("deviance")), _num(row.get("dof")),
+                 _e(format_p_value(row.get("p_value"))), _fixed(row.get("aic")), _fixed(row.get("bic")),
+                 _fixed(row.get("delta_aic")), _fixed(row.get("delta_bic")), _num(row.get("weight"), 3),
+                 _fixed(row.get("cv_deviance"))]
+        near = row.get("delta_bic") is not None and row["delta_bic"] <= _BIC_WINDOW
+        (shown if row.get("adequate", True) or near else hidden).append(cells)
+    out.append(_table(header, shown, "wide"))
+    if hidden:
+        out.append(f"<details><summary>{len(hidden)} more candidates: inadequate (goodness-of-fit p &lt; 0.01) and more "
+                   f"than {_BIC_WINDOW:g} above the best BIC</summary>{_table(header, hidden, 'wide')}</details>")
+    out.append("<p class=\"caption\">Shown: the adequate candidates and any within 10 of the best BIC. k: number of "
+               "model parameters; p: goodness-of-fit p-value of the deviance; CV: held-out-probe predictive deviance "
+               "(computed for up to three leading candidates within 10 of the best BIC); weight: Akaike weight. "
+               "Deviances, information criteria and their differences in units of the deviance (dimensionless).</p>")
     chosen = getattr(getattr(comparison, "chosen", None), "spec", None)
     # the tests that add a feature to, or remove one from, the chosen model; all are in datasheet.json
     tests = [t for t in getattr(comparison, "tests", None) or [] if chosen in (t["null"], t["alternative"])]
     if tests:
-        rows = [[_e(t["null"]), _e(t["alternative"]), _e(t["feature"]), _num(t["statistic"]), _e(t["reference"]),
-                 _num(t["p_value"], 3), "yes" if t["feature_needed"] else "no"] for t in tests]
+        rows = [[_e(t["null"]), _e(t["alternative"]), _e(t["feature"]), _fixed(t["statistic"]), _e(t["reference"]),
+                 _e(format_p_value(t["p_value"])), "yes" if t["feature_needed"] else "no"] for t in tests]
         out.append("<h3>Likelihood-ratio tests around the chosen model</h3>")
         out.append(_table(["null", "alternative", "feature", "statistic", "reference distribution", "p", "needed"],
                           rows, "wide"))
@@ -235,37 +280,39 @@ def _verdict_section(sheet: dict, comparison) -> str:
     return "".join(out)
 
 
-def _size(value) -> int:
-    return sum(_size(v) for v in value) if isinstance(value, (list, tuple)) else 1
-
-
-def _flatten(data: dict, prefix: str = "") -> list[tuple[str, object]]:
-    items = []
-    for key, value in data.items():
-        name = f"{prefix}{key}"
-        if isinstance(value, dict):
-            items += _flatten(value, name + ".")
-        elif isinstance(value, (list, tuple)) and _size(value) > 8:
-            items.append((name, f"{_size(value)} numbers (see datasheet.json)"))
-        else:
-            items.append((name, value))
-    return items
-
-
-def _cell(value) -> str:
-    if isinstance(value, (list, tuple)):
-        return _e(json.dumps([v if not isinstance(v, float) else float(f"{v:.4g}") for v in value], default=str))
-    return _num(value)
-
-
 def _cross_section(summary: dict) -> str:
     summary = summary or {}
     if not summary:
         return "<p>No cross-check was run.</p>"
-    out = [f'<p class="verdict">{_e(summary.get("verdict") or "no verdict")}</p>']
-    rows = [[_e(k), _cell(v)] for k, v in _flatten({k: v for k, v in summary.items() if k != "verdict"})]
-    if rows:
-        out.append(_table(["quantity", "value"], rows))
+    out = [f'<p class="verdict">Verdict: {_e(summary.get("verdict") or "no verdict")} '
+           f'(tension is declared when a p-value falls below {_e(summary.get("level", ""))}).</p>']
+    rows = []
+    povm = summary.get("povm") or {}
+    if povm:
+        photons = povm.get("photons_compared") or []
+        largest = povm.get("largest") or {}
+        rows.append(["POVM: model-free reconstruction of the data against the fitted model",
+                     f"n = {photons[0]}..{photons[-1]}" if photons else "none",
+                     _fixed(povm.get("chi_square")), _num(povm.get("dof")), _e(format_p_value(povm.get("p_value"))),
+                     _e(f"{povm.get('max_abs_z', float('nan')):.2f} at outcome {largest.get('outcome')}, "
+                        f"{largest.get('photons')} photons") if largest else "n/a"])
+    wigner = summary.get("wigner") or {}
+    if wigner:
+        largest = wigner.get("largest") or {}
+        rows.append(["Wigner: pointwise values of the data against the model through the same estimator",
+                     "every probed displacement", _fixed(wigner.get("chi_square")), _num(wigner.get("dof")),
+                     _e(format_p_value(wigner.get("p_value"))),
+                     _e(f"{wigner.get('max_abs_z', float('nan')):.2f} at outcome {largest.get('outcome')}, "
+                        f"Re(alpha) = {largest.get('re_alpha', float('nan')):.3g}") if largest else "n/a"])
+    phase = summary.get("phase_insensitivity") or {}
+    if phase:
+        rows.append(["phase insensitivity: probes differing only in displacement phase", "",
+                     _fixed(phase.get("chi_square")), _num(phase.get("dof")), _e(format_p_value(phase.get("p_value"))), ""])
+    out.append(_table(["comparison", "where", "chi-square", "dof", "p", "largest |z|"], rows, "wide"))
+    notes = [summary.get("povm_comparison"), summary.get("constrained_rule")]
+    out.append("<p class=\"caption\">" + " ".join(_e(n[0].upper() + n[1:] + ".") for n in notes if n) +
+               " z: difference in units of its standard error; the last outcome is left out of each statistic "
+               "(fixed by completeness). Every number is in datasheet.json.</p>")
     return "".join(out)
 
 
@@ -284,27 +331,44 @@ def _provenance_section(sheet: dict, scan) -> str:
 _STYLE = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0 auto;max-width:1100px;
 padding:1rem 2rem;color:#1d1d1f;line-height:1.45}
-h1{border-bottom:2px solid #444;padding-bottom:.3rem}h2{margin-top:2.2rem;border-bottom:1px solid #bbb}
+h1{border-bottom:2px solid #444;padding-bottom:.3rem;overflow-wrap:anywhere}h2{margin-top:2.2rem;border-bottom:1px solid #bbb}
 table{border-collapse:collapse;margin:.6rem 0;font-size:.88rem}th,td{border:1px solid #ccc;padding:.25rem .5rem;
 text-align:left;vertical-align:top}th{background:#eef1f5}tbody tr:nth-child(even){background:#f8f9fb}
-table.wide{display:block;overflow-x:auto}figure{margin:1rem 0}figure svg{display:block;width:100%;
+table{display:block;overflow-x:auto;max-width:100%}figure{margin:1rem 0}figure svg{display:block;width:100%;
 height:auto;border:1px solid #ddd}figcaption,.caption{font-size:.85rem;color:#444}.note{background:#fff6d6;
 border-left:4px solid #e0a800;padding:.4rem .7rem}.verdict{font-weight:600}code{font-size:.8rem;word-break:break-all}
-nav a{margin-right:.8rem}
+nav a{margin-right:.8rem;display:inline-block}table.header td:first-child{font-weight:600}
+table.header thead{display:none}details{margin:.4rem 0}summary{cursor:pointer;color:#333}
+@media (max-width:700px){body{padding:.5rem .8rem}h1{font-size:1.45rem}table{font-size:.8rem}}
 """
 
 SECTIONS = ("Figures", "Model verdict", "Outcome probabilities", "Residuals", "POVM", "Wigner functions",
             "Cross-check", "Provenance")
 
 
-def render_html(title: str, sections: list[tuple[str, str]]) -> str:
-    """Assemble the page; ``sections`` are (heading, already-escaped HTML body) pairs."""
+def _header(sheet: dict, scan) -> str:
+    """Who, what, when and under which conditions: the block under the title."""
+    prov = sheet.get("provenance") or {}
+    conditions = sheet.get("conditions") or {}
+    rows = [["scan file", _e(prov.get("input_file", scan.source))],
+            ["analysed (UTC)", _e(prov.get("created_utc", ""))],
+            ["model", f"<code>{_e(sheet['model']['spec'])}</code>"]]
+    rows += [[_e(key.replace("_", " ")), _e(value)] for key, value in conditions.items()]
+    if not conditions:
+        rows.append(["conditions", "not given (add them with --meta KEY=VALUE or a SCAN.meta.json file)"])
+    return _table(["", ""], rows, "header")
+
+
+def render_html(title: str, sections: list[tuple[str, str]], header: str = "") -> str:
+    """Assemble the page; ``sections`` are (heading, already-escaped HTML body) pairs; ``header``
+    (HTML) goes between the title and the navigation."""
     anchors = [(h, h.lower().replace(" ", "-")) for h, _ in sections]
     nav = "".join(f'<a href="#{a}">{_e(h)}</a>' for h, a in anchors)
     body = "".join(f'<section id="{a}"><h2>{_e(h)}</h2>{content}</section>'
                    for (h, a), (_, content) in zip(anchors, sections))
     return (f'<!DOCTYPE html><html lang="en"><head><meta charset="utf-8"><title>{_e(title)}</title>'
-            f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1><nav>{nav}</nav>{body}</body></html>\n")
+            '<meta name="viewport" content="width=device-width, initial-scale=1">'
+            f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1>{header}<nav>{nav}</nav>{body}</body></html>\n")
 
 
 def _saturation(cross: dict) -> str:
@@ -323,15 +387,18 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
     """Write ``report.html`` and ``plots/*.svg`` into ``out_dir``; return {name: Path}."""
     out_dir = Path(out_dir)
     files: dict = {}
-    n_outcomes = scan.n_outcomes
     model_theta, model_se = np.asarray(cross["model_theta"]), np.asarray(cross["model_stderr"])
 
-    probes = _probe_points(scan)
-    curves = model_curves(scan, result, cross.get("curve_theta", model_theta))
-    svg_prob = _save_plot(out_dir, "outcome_probabilities", plots.outcome_probabilities_figure(probes, curves, n_outcomes), files)
+    groups = outcome_groups(scan.n_outcomes)
+    probes = _probe_points(scan, groups)
+    curves = [dict(c, probability=_grouped(c["probability"], groups))
+              for c in model_curves(scan, result, cross.get("curve_theta", model_theta))]
+    svg_prob = _save_plot(out_dir, "outcome_probabilities",
+                          plots.outcome_probabilities_figure(probes, curves, len(groups), [g for g, _ in groups]), files)
 
     z = standardised_residuals(scan, result.predicted)
-    labels = list(scan.labels) if scan.labels else None
+    labels = list(scan.labels) if scan.labels else [f"coh {a:.3g} th {n:.3g}" for a, n in
+                                                   zip(scan.coherent_photons, scan.thermal_photons)]
     svg_res = _save_plot(out_dir, "residuals", plots.residuals_figure(probes["mean_photons"], z, labels), files)
 
     recon = cross["reconstruction"]
@@ -339,7 +406,10 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
     svg_povm = _save_plot(out_dir, "povm", fig, files)
 
     grid, values, points, smoothed = _wigner_data(scan, cross)
-    svg_wig = _save_plot(out_dir, "wigner", plots.wigner_figure(grid, values, points, smoothed), files)
+    pointwise, model_pointwise = cross.get("pointwise"), cross.get("model_pointwise")
+    model_points = (wigner_series(pointwise.alpha, model_pointwise)
+                    if pointwise is not None and model_pointwise is not None else None)
+    svg_wig = _save_plot(out_dir, "wigner", plots.wigner_figure(grid, values, points, smoothed, model_points), files)
 
     levels = ", ".join(f"{t:.3g}" for t in probes["levels"])
     constrained = np.flatnonzero(recon.constrained)
@@ -350,8 +420,11 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
         ("Model verdict", _verdict_section(sheet, comparison)),
         ("Outcome probabilities", _figure_block(svg_prob, (
             "Observed outcome frequencies (points, Wilson 1-sigma intervals) against the probe mean photon number, "
-            "with the fitted model (lines); one colour per outcome. Filled circles and solid lines: coherent probes; "
-            f"other markers (hollow) and line styles: displaced-thermal probes. Thermal parts in this scan: {levels} photons."))),
+            "with the fitted model (lines); one colour per outcome"
+            + (f", outcomes {_SEPARATE_OUTCOMES} and above summed" if len(groups) < scan.n_outcomes else "")
+            + ". Filled circles and solid lines: coherent probes; other markers (hollow) and line styles: "
+            f"displaced-thermal probes. Thermal parts in this scan: {levels} photons. The horizontal axis is "
+            "linear near zero and logarithmic above when the probes span more than a factor 20 (its label says which)."))),
         ("Residuals", _figure_block(svg_res, (
             "Standardised residuals (observed - expected) / sqrt(shots q (1 - q)) per probe and outcome; dashed lines "
             "at +-2. An adequate model leaves them scattered around zero without structure."))),
@@ -361,15 +434,22 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
         ("Wigner functions", _figure_block(svg_wig, (
             "Wigner functions of the POVM elements along the real axis. Axis convention: alpha is the complex amplitude "
             "of the displacement, the horizontal axis is Re(alpha) at Im(alpha) = 0, and the quadrature is "
-            "q = sqrt(2) Re(alpha). Normalisation: the identity has W = 1/pi. Line: model; "
-            + ("points: pointwise values from displaced-thermal probes (phase insensitive, so drawn at +-|alpha|); dashed: smoothed. "
-               f"The pointwise values assume the response is constant above M = {_saturation(cross)} photons (as many unknowns as "
-               "thermal levels), so with few thermal levels they can sit off the exact model curve."
-               if has_points else "no pointwise values were computed (they need displacements probed at two or more thermal levels).")))),
+            "q = sqrt(2) Re(alpha). Normalisation: the identity has W = 1/pi. Line: the fitted model's exact Wigner function. "
+            + ("Hollow points: pointwise values from displaced-thermal probes (phase insensitive, so drawn at +-|alpha|). "
+               f"They assume the response is constant above M = {_saturation(cross)} photons (as many unknowns as thermal "
+               "levels), so with few thermal levels they can sit off the exact model line, most for high outcomes. The "
+               "cross-check therefore compares them with the filled triangles: the same pointwise estimator applied to the "
+               "model's exact probabilities; agreement between points and triangles is what the Wigner verdict reports. The "
+               "dashed curve, smoothed with the same saturation prior, is a diagnostic of the pointwise values only: it is "
+               "not used by the cross-check and need not follow the model line."
+               if has_points else "No pointwise values were computed (they need displacements probed at two or more "
+               "thermal levels).")))),
         ("Cross-check", _cross_section(cross.get("summary"))),
         ("Provenance", _provenance_section(sheet, scan)),
     ]
-    title = f"Detector report: {sheet['model']['spec']}"
+    conditions = sheet.get("conditions") or {}
+    device = conditions.get("device") or Path(str(scan.source)).stem
+    title = f"Detector report: {device}, {sheet['model']['spec']}"
     files["report"] = out_dir / "report.html"
-    atomic_write_text(files["report"], render_html(title, sections))
+    atomic_write_text(files["report"], render_html(title, sections, _header(sheet, scan)))
     return files

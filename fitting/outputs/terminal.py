@@ -1,41 +1,85 @@
-"""Compact human-readable summary of a datasheet for the terminal."""
+"""What the terminal shows: the datasheet in words and SI units, and a progress bar."""
 from __future__ import annotations
 
-__all__ = ["format_summary", "TerminalProgress"]
+from povmfit.fitting.display import FIGURE_UNITS, format_interval, format_p_value, format_quantity, text_table
+
+__all__ = ["format_summary", "TerminalProgress", "CANDIDATES_SHOWN"]
+
+CANDIDATES_SHOWN = 6
 
 
-def _num(value, digits=4) -> str:
-    if value is None:
-        return "-"
-    return f"{value:.{digits}g}"
+def _interval(figure: dict, unit: str) -> str:
+    return format_interval(*figure["ci95"], figure["stderr"], unit, reference=figure["value"])
+
+
+def _assumptions(sheet: dict) -> list[str]:
+    calibration = sheet.get("calibration") or {}
+    lines = []
+    if calibration.get("included"):
+        lines.append(f"probe calibration  {100 * calibration['relative_uncertainty']:.3g} % relative (1 sigma), "
+                     "included in the efficiency's uncertainty (statistical and calibration parts below)")
+    else:
+        lines.append("probe calibration  probes taken as exact: the efficiency excludes the calibration uncertainty")
+    gate = next((f.get("gate_duration_s") for f in sheet["figures"].values() if f.get("gate_duration_s")), None)
+    lines.append(f"gate               {format_quantity(gate, None, 's')} (dark count rates per gate duration)" if gate
+                 else "gate               not given: no dark count rates")
+    conditions = sheet.get("conditions") or {}
+    if conditions:
+        lines.append("conditions         " + ", ".join(f"{k} = {v}" for k, v in conditions.items()))
+    return lines
+
+
+def _part(stderr, unit: str) -> str:
+    return format_quantity(float(f"{stderr:.2g}"), None, unit)
+
+
+def _figure_rows(sheet: dict) -> list[list[str]]:
+    rows = []
+    for name, figure in sheet["figures"].items():
+        unit = FIGURE_UNITS.get(name, "")
+        parts = ""
+        if figure.get("calibration_stderr"):
+            parts = (f"stat {_part(figure['stat_stderr'], unit)}, calib {_part(figure['calibration_stderr'], unit)}")
+        rows.append([name, format_quantity(figure["value"], figure["stderr"], unit), _interval(figure, unit), parts])
+    return rows
+
+
+def _cross_check_lines(cross: dict) -> list[str]:
+    if not cross.get("verdict"):
+        return []
+    lines = [f"cross-check  {cross['verdict']}"]
+    povm = cross.get("povm") or {}
+    if povm.get("chi_square") is not None:
+        largest = povm.get("largest") or {}
+        lines.append(f"  POVM vs model-free reconstruction: chi2 {povm['chi_square']:.1f} on {povm['dof']} entries, "
+                     f"p = {format_p_value(povm.get('p_value'))}; largest |z| {povm.get('max_abs_z', 0):.2f} "
+                     f"(outcome {largest.get('outcome')}, {largest.get('photons')} photons)")
+    wigner = cross.get("wigner") or {}
+    if wigner.get("chi_square") is not None:
+        lines.append(f"  pointwise Wigner values: chi2 {wigner['chi_square']:.1f} on {wigner['dof']} values, "
+                     f"p = {format_p_value(wigner.get('p_value'))}; largest |z| {wigner.get('max_abs_z', 0):.2f}")
+    return lines
 
 
 def format_summary(sheet: dict, files: dict) -> str:
-    model = sheet["model"]
-    lines = [f"model      {model['spec']}", f"verdict    {sheet.get('verdict') or '-'}", ""]
-    lines.append(f"{'figure':<28}{'value':>12}{'stderr':>12}{'stat':>12}{'calib':>12}   95% interval")
-    for name, fig in sheet["figures"].items():
-        lines.append(
-            f"{name:<28}{_num(fig['value']):>12}{_num(fig['stderr']):>12}{_num(fig.get('stat_stderr')):>12}"
-            f"{_num(fig.get('calibration_stderr')):>12}   [{_num(fig['ci95'][0])}, {_num(fig['ci95'][1])}]"
-        )
-    note = sheet["calibration"].get("note")
-    if note:
-        lines.append(f"note: {note}")
+    """The datasheet as the terminal shows it after ``fit`` or ``demo``."""
+    lines = [f"model        {sheet['model']['spec']}", f"verdict      {sheet.get('verdict') or 'n/a'}", ""]
+    lines += _assumptions(sheet) + [""]
+    lines.append(text_table(["figure", "value ± stderr", "95 % interval", "uncertainty parts"], _figure_rows(sheet)))
     gof = sheet["goodness_of_fit"]
-    lines.append("")
-    lines.append(f"fit quality  deviance {gof['deviance']:.1f} on {gof['dof']} dof, p = {_num(gof['p_value'], 3)}"
-                 + ("" if gof["converged"] else "  (optimiser did NOT converge)"))
+    lines += ["", f"fit quality  deviance {gof['deviance']:.1f} on {gof['dof']} dof, goodness-of-fit p = "
+              f"{format_p_value(gof['p_value'])}" + ("" if gof["converged"] else "  (the optimiser did NOT converge)")]
     comparison = sheet.get("model_comparison") or []
     if len(comparison) > 1:
-        lines.append("")
-        lines.append(f"{'candidate':<44}{'k':>3}{'dBIC':>10}{'dAIC':>10}{'p':>10}")
-        for row in comparison[:6]:
-            lines.append(f"{row['model']:<44}{row['parameters']:>3}{row['delta_bic']:>10.1f}{row['delta_aic']:>10.1f}{_num(row['p_value'], 3):>10}")
-    cross = sheet.get("cross_check") or {}
-    if cross.get("verdict"):
-        lines.append("")
-        lines.append(f"cross-check  {cross['verdict']}")
+        shown = comparison[:CANDIDATES_SHOWN]
+        rows = [[r["model"], r["parameters"], f"{r['delta_bic']:.1f}", f"{r['delta_aic']:.1f}", format_p_value(r["p_value"])]
+                for r in shown]
+        lines += ["", text_table(["candidate", "k", "dBIC", "dAIC", "p"], rows)]
+        if len(comparison) > len(shown):
+            lines.append(f"({len(shown)} of {len(comparison)} candidates shown, best first; all are in datasheet.json)")
+    cross = _cross_check_lines(sheet.get("cross_check") or {})
+    if cross:
+        lines += [""] + cross
     lines.append("")
     plots = [path for name, path in files.items() if name.startswith("plot_")]
     for name, path in files.items():
