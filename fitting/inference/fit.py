@@ -25,8 +25,9 @@ import numpy as np
 from scipy import optimize
 from scipy.special import chdtrc, chdtri
 
-from povmfit.models import DetectorModel, dark_parameter_names, parse_model_spec
+from povmfit.models import DetectorModel, dark_parameter_names
 
+from povmfit.fitting.data.arguments import as_model
 from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
 from povmfit.fitting.inference.bootstrap import bootstrap_problem
 from povmfit.fitting.inference.objective import FitProblem, fit_cutoff
@@ -203,7 +204,7 @@ def fit_scan(
     Warns:
         FitNotConverged: the optimiser stopped without meeting its criteria.
     """
-    model = _model_argument(model)
+    model = as_model(model)
     if calibration_uncertainty is not None and not 0 < calibration_uncertainty < 0.5:
         raise ArgumentError(f"calibration_uncertainty: expected a relative width between 0 and 0.5, got {calibration_uncertainty}")
     if weighting not in ("deviance", "pearson"):
@@ -286,17 +287,6 @@ def fit_scan(
         compute_model=compute_model or model,
         bootstrap=boot,
     )
-
-
-def _model_argument(model) -> DetectorModel:
-    if isinstance(model, DetectorModel):
-        return model
-    if isinstance(model, str):
-        try:
-            return parse_model_spec(model)
-        except ValueError as error:
-            raise ArgumentError(f"model: {error}") from None
-    raise ArgumentError(f"model: expected a DetectorModel or a model spec string, got {type(model).__name__}")
 
 
 def _safe_inverse(matrix: np.ndarray) -> np.ndarray:

@@ -10,7 +10,7 @@ from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.inference.candidates import family_compute_model
 from povmfit.fitting.inference.compare import Comparison, compare_models
 from povmfit.fitting.inference.fit import FitResult, check_identifiable, fit_scan
-from povmfit.fitting.workflow.arguments import as_calibration_uncertainty, as_model, as_models, as_scan
+from povmfit.fitting.data.arguments import as_calibration_uncertainty, as_model, as_models, as_scan
 
 __all__ = ["fit", "compare", "reconstruct", "rank_and_fit"]
 
