@@ -13,12 +13,14 @@ _EPILOG = """\
 probe grid: NAME=VALUES parts joined by ';' (NAME coherent or thermal, mean photons);
 VALUES a comma list or START:STOP:COUNT (inclusive); all combinations are probed;
 several grids may be joined with '|'. GRID may also be a CSV file with columns
-coherent_photons, thermal_photons.
+coherent_photons, thermal_photons (optional probe, shots); with a shots column, such as
+a plan.csv from 'povmfit plan', each probe gets its own shots and --shots is left out.
 
 examples:
   povmfit simulate scan.povmfit/detector.json --probes 'coherent=0:4:21;thermal=0,0.5,1' \\
       --shots 100000 --seed 3 -o synthetic.csv
   povmfit simulate detector.json --probes probes.csv --shots 50000 -o synthetic.parquet
+  povmfit simulate detector.json --probes plan.csv --seed 1 -o planned.csv
 """
 
 
@@ -32,7 +34,8 @@ def register(subparsers) -> argparse.ArgumentParser:
     )
     parser.add_argument("detector", metavar="DETECTOR", help="detector.json from a fit, or a povm.csv table")
     parser.add_argument("--probes", required=True, metavar="GRID", help="probe grid spec or CSV file (see below)")
-    parser.add_argument("--shots", required=True, type=int, metavar="N", help="shots per probe")
+    parser.add_argument("--shots", type=int, default=None, metavar="N",
+                        help="shots per probe (required unless the probe file has a shots column)")
     parser.add_argument("--seed", type=int, default=None, metavar="S",
                         help="random seed (default: fresh randomness from the operating system)")
     parser.add_argument("--povm-source", choices=("auto", "reconstruction", "model"), default="auto",
@@ -43,7 +46,7 @@ def register(subparsers) -> argparse.ArgumentParser:
 
 # ----- probe grid ------------------------------------------------------------------------
 def run(args) -> int:
-    if args.shots < 1:
+    if args.shots is not None and args.shots < 1:
         raise ArgumentError(f"--shots must be >= 1, got {args.shots}")
     if args.seed is not None and args.seed < 0:
         raise ArgumentError(f"--seed must be >= 0, got {args.seed}")
@@ -52,6 +55,11 @@ def run(args) -> int:
     from povmfit.fitting.data.scan import write_scan
     from povmfit.fitting.emulation.simulate import simulate_scan
 
-    scan = simulate_scan(args.detector, args.probes, args.shots, args.seed, args.povm_source)
+    try:
+        scan = simulate_scan(args.detector, args.probes, args.shots, args.seed, args.povm_source)
+    except ArgumentError as error:
+        if str(error).startswith("shots:"):  # name the flag, not the keyword argument
+            raise ArgumentError("--shots" + str(error)[len("shots"):]) from None
+        raise
     write_scan(scan, args.out)
     return 0

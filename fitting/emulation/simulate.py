@@ -12,10 +12,12 @@ example gives 21 x 3 = 63 probes). Several grids can be joined with ``|``, e.g.
 ``coherent=0:4:9|thermal=0.5,1``.
 
 GRID may instead be a CSV file with columns ``coherent_photons`` and ``thermal_photons``
-(optional ``probe`` labels), one probe per row.
+(optional ``probe`` labels and ``shots``), one probe per row: a ``plan.csv`` from
+``povmfit plan`` is such a file.
 
-Every probe gets ``--shots`` shots, drawn from the detector's outcome probabilities
-(multinomial); the scan is written in the wide scan layout (CSV or Parquet by suffix).
+Every probe gets ``--shots`` shots (or its own ``shots`` from the probe file; giving both is
+refused), drawn from the detector's outcome probabilities (multinomial); the scan is written
+in the wide scan layout (CSV or Parquet by suffix).
 """
 from __future__ import annotations
 
@@ -76,12 +78,14 @@ def parse_probe_grid(spec: str) -> tuple[np.ndarray, np.ndarray]:
     return coherent, thermal
 
 
-def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
-    """Probe list CSV -> (coherent, thermal, labels or None). InputFileError names line and column."""
+def load_probe_file(path, with_shots: bool = False):
+    """Probe list CSV -> (coherent, thermal, labels or None), and with ``with_shots`` also the
+    per-probe shots (int array, or None without a ``shots`` column). InputFileError names the
+    line and column."""
     path = Path(path)
     rows = read_csv_rows(path, "probe file")
     header = [h.strip() for h in rows[0]] if rows else []
-    allowed = {"coherent_photons", "thermal_photons", "probe"}
+    allowed = {"coherent_photons", "thermal_photons", "probe", "shots"}
     if "coherent_photons" not in header or "thermal_photons" not in header:
         raise InputFileError(f"{path}: line 1: need columns coherent_photons and thermal_photons")
     unknown = [h for h in header if h not in allowed]
@@ -93,6 +97,12 @@ def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
             if name == "probe":
                 columns[name].append(cell.strip())
                 continue
+            if name == "shots":
+                text = cell.strip()
+                if not text.isdigit() or int(text) < 1:
+                    raise InputFileError(f"{path}: line {line}, column 'shots': expected a whole number >= 1, got {cell!r}")
+                columns[name].append(int(text))
+                continue
             try:
                 value = float(cell)
             except ValueError:
@@ -103,11 +113,15 @@ def load_probe_file(path) -> tuple[np.ndarray, np.ndarray, list[str] | None]:
     if not columns["coherent_photons"]:
         raise InputFileError(f"{path}: no probes")
     labels = columns.get("probe")
-    return np.array(columns["coherent_photons"]), np.array(columns["thermal_photons"]), labels
+    out = (np.array(columns["coherent_photons"]), np.array(columns["thermal_photons"]), labels)
+    if with_shots:
+        return out + (np.array(columns["shots"], dtype=np.int64) if "shots" in columns else None,)
+    return out
 
 
-def simulate_counts(emulator, coherent, thermal, shots: int, seed=None) -> np.ndarray:
-    """Counts (n_probes, n_outcomes): Multinomial(shots, q_p) for every probe p.
+def simulate_counts(emulator, coherent, thermal, shots, seed=None) -> np.ndarray:
+    """Counts (n_probes, n_outcomes): Multinomial(shots_p, q_p) for every probe p; ``shots``
+    is one whole number for every probe or an array (n_probes,) of them.
 
     q_p uses one detector (one ensemble member, chosen with ``seed``) for all probes.
     """
@@ -118,30 +132,42 @@ def simulate_counts(emulator, coherent, thermal, shots: int, seed=None) -> np.nd
     distributions = np.asarray(probe_distributions(coherent, thermal, n_photons))
     member = int(rng.integers(emulator.n_members)) if emulator.n_members > 1 else 0
     q = distributions @ emulator.povms(n_photons)[member].T
-    return sample_counts(q, shots, rng)
+    if np.ndim(shots) == 0:
+        return sample_counts(q, shots, rng)
+    q = np.clip(q, 0.0, None)
+    return rng.multinomial(np.asarray(shots, dtype=np.int64), q / q.sum(axis=1, keepdims=True))
 
 
-def simulate_scan(detector, probes, shots: int, seed=None, povm_source: str = "auto"):
+def simulate_scan(detector, probes, shots=None, seed=None, povm_source: str = "auto"):
     """A synthetic :class:`Scan`: ``shots`` multinomial draws per probe from a detector.
 
     Args:
         detector: an :class:`Emulator`, or the path of a detector.json or povm.csv.
-        probes: a grid spec (see the module docstring), the path of a probe CSV file, or a
-            pair of arrays (coherent_photons, thermal_photons), mean photons per shot.
-        shots: shots per probe (>= 1); seed: random seed (None: fresh randomness).
+        probes: a grid spec (see the module docstring), the path of a probe CSV file (with an
+            optional ``shots`` column, as in a ``plan.csv``), or a pair of arrays
+            (coherent_photons, thermal_photons), mean photons per shot.
+        shots: shots per probe (>= 1); None when the probe file gives them (giving both is
+            refused). seed: random seed (None: fresh randomness).
     """
     from povmfit.fitting.data.scan import scan_from_arrays
     from povmfit.fitting.emulation.emulator import Emulator
 
-    if isinstance(shots, bool) or not isinstance(shots, int) or shots < 1:
+    if shots is not None and (isinstance(shots, bool) or not isinstance(shots, int) or shots < 1):
         raise ArgumentError(f"shots: expected a whole number >= 1, got {shots!r}")
     labels = None
+    file_shots = None
     if isinstance(probes, (str, Path)) and Path(probes).is_file():
-        coherent, thermal, labels = load_probe_file(probes)
+        coherent, thermal, labels, file_shots = load_probe_file(probes, with_shots=True)
+        if file_shots is not None and shots is not None:
+            raise ArgumentError(f"shots: the probe file {probes} gives the shots of every probe; leave shots out")
     elif isinstance(probes, str):
         coherent, thermal = parse_probe_grid(probes)
     else:
         coherent, thermal = (np.asarray(v, dtype=float).ravel() for v in probes)
+    if file_shots is not None:
+        shots = file_shots
+    elif shots is None:
+        raise ArgumentError("shots: expected a whole number >= 1 (the probes give no shots of their own)")
     emulator = detector if isinstance(detector, Emulator) else Emulator.from_file(detector, povm_source)
     counts = simulate_counts(emulator, coherent, thermal, shots, seed)
     return scan_from_arrays(coherent, thermal, counts, labels=labels, source=f"simulate {detector}")
