@@ -34,9 +34,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import optimize
 
-from povmfit.models import DetectorModel, choose_cutoff, probe_distributions_numpy
+from povmfit.models import DetectorModel, choose_cutoff
 
-from povmfit.fitting.inference.objective import PROBABILITY_FLOOR, povm_and_jacobian
+from povmfit.fitting.inference.objective import PROBABILITY_FLOOR, povm_and_jacobian, scaled_probe_distributions
 
 __all__ = [
     "candidate_grid", "probe_information", "figure_gradient", "prior_information", "variances",
@@ -79,8 +79,8 @@ def probe_information(model: DetectorModel, values, coherent, thermal, calibrate
     parameters (+ the probe scale s, last, when ``calibrated``); also the outcome
     probabilities q[p, k] and the POVM with its Jacobian, theta (K, N) and (K, N, M).
 
-    The derivative in s uses the thinning identity of displaced thermal states (scaling both
-    photon numbers by s is loss s): d P_s(n)/ds at s = 1 is n P(n) - (n+1) P(n+1).
+    The derivative in the probe scale s (at s = 1) is that of the fit's objective
+    (``objective.scaled_probe_distributions``).
     """
     coherent = np.asarray(coherent, dtype=float)
     thermal = np.asarray(thermal, dtype=float)
@@ -88,13 +88,10 @@ def probe_information(model: DetectorModel, values, coherent, thermal, calibrate
     x = np.array([float(values[name]) for name in model.parameter_names])
     theta, jac = povm_and_jacobian(model, n_photons)(x)
     theta, jac = np.asarray(theta), np.asarray(jac)
-    distributions = probe_distributions_numpy(coherent, thermal, n_photons + 1)
-    inside = distributions[:, :n_photons]
+    inside, d_distribution = scaled_probe_distributions(coherent, thermal, 1.0, n_photons)
     q = inside @ theta.T
     dq = np.tensordot(inside, jac, axes=(1, 1))  # (C, K, M)
     if calibrated:
-        photons = np.arange(n_photons)
-        d_distribution = photons * inside - (photons + 1) * distributions[:, 1:n_photons + 1]
         dq = np.concatenate([dq, (d_distribution @ theta.T)[..., None]], axis=2)
     usable = q > PROBABILITY_FLOOR
     weight = np.where(usable, 1.0 / np.where(usable, q, 1.0), 0.0)
