@@ -158,7 +158,7 @@ def test_model_curves_from_the_fitted_povm_match_the_jax_model(direct_inputs):
 
 
 def test_symmetric_log_axis_and_ticks_by_hand():
-    from povmfit.fitting.outputs.plots import _Axis, _linear_ticks, _symlog_ticks
+    from povmfit.fitting.outputs.plots import _Axis, linear_ticks, _symlog_ticks
 
     # linear part 0..0.1 takes half a decade; 0.1..10 two decades: 2.5 units over 100 px (by hand)
     axis = _Axis(0.0, 10.0, 100.0, threshold=0.1)
@@ -166,8 +166,8 @@ def test_symmetric_log_axis_and_ticks_by_hand():
     flipped = _Axis(-1.0, 1.0, 50.0, flip=True)  # vertical pixel axes grow downwards
     np.testing.assert_allclose(flipped([-1.0, 0.0, 1.0]), [50.0, 25.0, 0.0])
     # a 0.64 span wants ~5 ticks: step 0.2 (1-2-2.5-5 rule, common practice, by hand)
-    assert _linear_ticks(-0.23, 0.41, 5) == [(-0.2, "\u22120.2"), (0.0, "0.0"), (0.2, "0.2"), (0.4, "0.4")]
-    assert [t for _, t in _linear_ticks(0.0, 1.0, 4)] == ["0.00", "0.25", "0.50", "0.75", "1.00"]
+    assert linear_ticks(-0.23, 0.41, 5) == [(-0.2, "\u22120.2"), (0.0, "0.0"), (0.2, "0.2"), (0.4, "0.4")]
+    assert [t for _, t in linear_ticks(0.0, 1.0, 4)] == ["0.00", "0.25", "0.50", "0.75", "1.00"]
     major, minor = _symlog_ticks(7.0, 0.3)  # fewer than three decades: 1-2-5 steps are labelled
     assert [t for _, t in major] == ["0", "0.5", "1", "2", "5"]
     assert 3.0 in minor and 0.5 not in minor

@@ -19,7 +19,7 @@ import numpy as np
 
 from povmfit.fitting.data.files import atomic_write_bytes, atomic_write_text
 from povmfit.fitting.outputs import plots
-from povmfit.fitting.outputs.plots import _DASHES, FIGURE_WIDTH, _document, _legend, _linear_ticks, _Panel, _panel_boxes
+from povmfit.fitting.outputs.plots import DASHES, FIGURE_WIDTH, svg_document, legend, linear_ticks, Panel, panel_boxes
 from povmfit.fitting.outputs.report import render_html
 
 __all__ = ["write_batch_outputs", "condition_figure"]
@@ -70,14 +70,14 @@ def condition_figure(frame, condition: str, figures: list[str], text_columns: li
     """
     groups = _groups(frame, text_columns)
     entries = [{"text": label, "colour": plots.outcome_colour(j), "dash": "", "shape": j} for j, (label, _) in enumerate(groups)]
-    parts, legend_height = _legend([("series" if text_columns else None, entries)], 70, 8, FIGURE_WIDTH - 80)
+    parts, legend_height = legend([("series" if text_columns else None, entries)], 70, 8, FIGURE_WIDTH - 80)
     if marks:
         kinds = list(dict.fromkeys(m["text"] for m in marks))
-        parts2, extra = _legend([("lines", [{"text": t, "colour": "#444", "dash": _DASHES[1 + i % 3]} for i, t in enumerate(kinds)])],
+        parts2, extra = legend([("lines", [{"text": t, "colour": "#444", "dash": DASHES[1 + i % 3]} for i, t in enumerate(kinds)])],
                                 70, 8 + legend_height, FIGURE_WIDTH - 80)
         parts += parts2
         legend_height += extra
-    boxes, lowest, height = _panel_boxes(len(figures), 50 + legend_height, 80, 70, 200.0)
+    boxes, lowest, height = panel_boxes(len(figures), 50 + legend_height, 80, 70, 200.0)
     x = frame[condition].to_numpy(dtype=float)
     xlim = _pad(x)
     for i, (name, box) in enumerate(zip(figures, boxes)):
@@ -89,9 +89,9 @@ def condition_figure(frame, condition: str, figures: list[str], text_columns: li
             floor = positive.min() / 10
             value, lo, hi = (np.log10(np.where(a > 0, a, floor)) for a in (value, lo, hi))
         ylim = _pad(np.concatenate([value, lo, hi]))
-        panel = _Panel(box, xlim, ylim)
-        yticks = _log_ticks(*ylim) if log else _linear_ticks(*ylim, 5)
-        panel.axes(_linear_ticks(*xlim, 6), yticks, condition if lowest[i] else None,
+        panel = Panel(box, xlim, ylim)
+        yticks = _log_ticks(*ylim) if log else linear_ticks(*ylim, 5)
+        panel.axes(linear_ticks(*xlim, 6), yticks, condition if lowest[i] else None,
                    _LABELS.get(name, name) + (" (log)" if log else ""), None)
         for j, (label, mask) in enumerate(groups):
             colour = plots.outcome_colour(j)
@@ -105,9 +105,9 @@ def condition_figure(frame, condition: str, figures: list[str], text_columns: li
             if mark["figure"] == name:
                 j = next((k for k, (label, _) in enumerate(groups) if label == mark["group"]), 0)
                 panel.line(np.array([mark["x"], mark["x"]]), np.array(ylim), plots.outcome_colour(j), 1.0,
-                           _DASHES[1 + kinds.index(mark["text"]) % 3])
+                           DASHES[1 + kinds.index(mark["text"]) % 3])
         parts.append(panel.svg())
-    return _document(FIGURE_WIDTH, height + 40, f"Figures against {condition}", parts)
+    return svg_document(FIGURE_WIDTH, height + 40, f"Figures against {condition}", parts)
 
 
 def _pad(values) -> tuple[float, float]:

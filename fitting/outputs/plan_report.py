@@ -127,11 +127,11 @@ def plan_figure(plan) -> str:
     floor = plan.figures[curve["figure"]]["floor"]
     if floor:
         entries.append({"text": "calibration floor (infinitely many shots)", "colour": "#d62728", "dash": "7 2.5 1.5 2.5"})
-    parts, legend_height = plots._legend([(None, entries)], 70, 8, plots.FIGURE_WIDTH - 80)
+    parts, legend_height = plots.legend([(None, entries)], 70, 8, plots.FIGURE_WIDTH - 80)
     values = np.concatenate([planned, uniform[np.isfinite(uniform)], [target], [floor] if floor else []])
     y_lo, y_hi = np.log10(values.min()) - 0.1, np.log10(values.max()) + 0.1
     x_lo, x_hi = np.log10(totals.min()), np.log10(totals.max())
-    panel = plots._Panel((80, 24 + legend_height, plots.FIGURE_WIDTH - 100, 380), (x_lo, x_hi), (y_lo, y_hi))
+    panel = plots.Panel((80, 24 + legend_height, plots.FIGURE_WIDTH - 100, 380), (x_lo, x_hi), (y_lo, y_hi))
     xticks = [(math.log10(v), t) for v, t in _log_ticks(totals.min(), totals.max())]
     yticks = [(math.log10(v), t) for v, t in _log_ticks(10**y_lo, 10**y_hi)]
     if len(yticks) < 2:
@@ -148,7 +148,7 @@ def plan_figure(plan) -> str:
     for total, colour, shape in marks:
         panel.points(np.array([math.log10(total)]), np.array([math.log10(target)]), colour, shape)
     parts.append(panel.svg())
-    return plots._document(plots.FIGURE_WIDTH, panel.y + panel.height + 52,
+    return plots.svg_document(plots.FIGURE_WIDTH, panel.y + panel.height + 52,
                            "Predicted standard error against total shots: planned and uniform designs", parts)
 
 

@@ -31,7 +31,7 @@ _CHAR_WIDTH = 0.6  # average glyph width of the sans-serif fonts above, in units
 # the ten-colour qualitative palette common in scientific plots, then its light variants
 _DARK = ("#1f77b4", "#ff7f0e", "#2ca02c", "#d62728", "#9467bd", "#8c564b", "#e377c2", "#7f7f7f", "#bcbd22", "#17becf")
 _LIGHT = ("#aec7e8", "#ffbb78", "#98df8a", "#ff9896", "#c5b0d5", "#c49c94", "#f7b6d2", "#c7c7c7", "#dbdb8d", "#9edae5")
-_DASHES = (None, "7 3.5", "1.5 2.5", "7 2.5 1.5 2.5")  # solid, dashed, dotted, dash-dot
+DASHES = (None, "7 3.5", "1.5 2.5", "7 2.5 1.5 2.5")  # solid, dashed, dotted, dash-dot
 _MARKERS = ((0, 0.0), (4, 45.0), (3, -90.0), (4, 0.0), (3, 90.0), (5, -90.0), (6, 0.0), (3, 0.0))  # (sides, turn)
 _NS = ' xmlns="http://www.w3.org/2000/svg"'
 _SYMLOG_LINEAR_DECADES = 0.5  # width of the linear part of a symmetric-log axis, in decades
@@ -110,7 +110,7 @@ class _Axis:
         return (1.0 - fraction if self.flip else fraction) * self.length
 
 
-class _Panel:
+class Panel:
     """One plotting area at (x, y) of size (width, height): grid and data inside a clipping
     viewport, frame, ticks and labels around it."""
 
@@ -216,7 +216,7 @@ def _number(value: float, decimals: int) -> str:
     return text.replace("-", "\u2212")
 
 
-def _linear_ticks(lo: float, hi: float, target: int = 6) -> list[tuple[float, str]]:
+def linear_ticks(lo: float, hi: float, target: int = 6) -> list[tuple[float, str]]:
     """Ticks at 1, 2, 2.5 or 5 times a power of ten, about ``target`` of them in [lo, hi]."""
     if not hi > lo:
         return [(lo, f"{lo:.3g}")]
@@ -246,7 +246,7 @@ def _limits(*arrays, pad: float = 0.06, include=()) -> tuple[float, float]:
     return lo - pad * span, hi + pad * span
 
 
-def _legend(groups: list[tuple[str | None, list[dict]]], x: float, y: float, width: float) -> tuple[list[str], float]:
+def legend(groups: list[tuple[str | None, list[dict]]], x: float, y: float, width: float) -> tuple[list[str], float]:
     """Legend rows: every group (heading or None, entries) starts a new row, its entries flow
     left to right and wrap. Returns (parts, height used).
 
@@ -282,13 +282,13 @@ def _legend(groups: list[tuple[str | None, list[dict]]], x: float, y: float, wid
     return parts, 20 * row
 
 
-def _document(width: float, height: float, title: str, parts: list[str]) -> str:
+def svg_document(width: float, height: float, title: str, parts: list[str]) -> str:
     return (f'<svg{_NS} width="{width:g}" height="{height:g}" viewBox="0 0 {width:g} {height:g}" '
             f'font-family="{_FONT}" role="img"><title>{_e(title)}</title>'
             f'<rect width="{width:g}" height="{height:g}" fill="white"/>{"".join(parts)}</svg>\n')
 
 
-def _panel_boxes(n_panels: int, top: float, left: float, gap: float, height: float = 175.0):
+def panel_boxes(n_panels: int, top: float, left: float, gap: float, height: float = 175.0):
     """Boxes of a grid of up to three columns; also whether each panel is at the bottom of its column."""
     columns = min(3, n_panels)
     width = (FIGURE_WIDTH - left - 14 - (columns - 1) * gap) / columns
@@ -315,24 +315,24 @@ def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: i
     levels, photons = probes["levels"], np.asarray(probes["mean_photons"], dtype=float)
     labels = labels or [str(k) for k in range(n_outcomes)]
     outcomes = [{"text": labels[k], "colour": outcome_colour(k), "dash": "", "shape": 0} for k in range(n_outcomes)]
-    kinds = [{"text": "coherent" if t == 0 else f"thermal part {t:.3g} photons", "dash": _DASHES[j % len(_DASHES)] or "",
+    kinds = [{"text": "coherent" if t == 0 else f"thermal part {t:.3g} photons", "dash": DASHES[j % len(DASHES)] or "",
               "shape": j, "hollow": j > 0} for j, t in enumerate(levels)]
-    parts, legend_height = _legend([("outcome", outcomes), ("probes", kinds)], 70, 8, FIGURE_WIDTH - 80)
+    parts, legend_height = legend([("outcome", outcomes), ("probes", kinds)], 70, 8, FIGURE_WIDTH - 80)
     positive = photons[photons > 0]
     top = float(max(photons.max(), max((c["mean_photons"].max() for c in curves), default=0.0)))
     threshold = float(positive.min()) if positive.size and positive.max() / positive.min() > 20 else None
     axis = _Axis(0.0, top, 1.0, threshold)
     pad = 0.03 * (axis.t1 - axis.t0)
     xlim = (float(_inverse(axis.t0 - pad, threshold)), float(_inverse(axis.t1 + pad, threshold)))
-    panel = _Panel((70, 24 + legend_height, FIGURE_WIDTH - 84, 440), xlim, (-0.02, 1.02), threshold)
-    xticks, minor = _symlog_ticks(top, threshold) if threshold else (_linear_ticks(0.0, xlim[1], 8), ())
+    panel = Panel((70, 24 + legend_height, FIGURE_WIDTH - 84, 440), xlim, (-0.02, 1.02), threshold)
+    xticks, minor = _symlog_ticks(top, threshold) if threshold else (linear_ticks(0.0, xlim[1], 8), ())
     scale = (f"symmetric-log scale: linear below {threshold:.3g}, logarithmic above" if threshold else "linear scale")
-    panel.axes(xticks, _linear_ticks(0.0, 1.0, 5), f"probe mean photon number, coherent + thermal ({scale})",
+    panel.axes(xticks, linear_ticks(0.0, 1.0, 5), f"probe mean photon number, coherent + thermal ({scale})",
                "outcome probability (linear)", x_minor=minor)
     for curve in curves:
         for k in range(n_outcomes):
             panel.line(curve["mean_photons"], curve["probability"][:, k], outcome_colour(k), 1.3,
-                       _DASHES[curve["level"] % len(_DASHES)])
+                       DASHES[curve["level"] % len(DASHES)])
     for j in range(len(levels)):
         rows = probes["thermal_level"] == j
         for k in range(n_outcomes):
@@ -340,7 +340,7 @@ def outcome_probabilities_figure(probes: dict, curves: list[dict], n_outcomes: i
             panel.error_bars(photons[rows], probes["lower"][rows, k], probes["upper"][rows, k], colour)
             panel.points(photons[rows], probes["frequency"][rows, k], colour, j, hollow=j > 0)
     parts.append(panel.svg())
-    return _document(FIGURE_WIDTH, panel.y + panel.height + 48, "Observed outcome frequencies and fitted model", parts)
+    return svg_document(FIGURE_WIDTH, panel.y + panel.height + 48, "Observed outcome frequencies and fitted model", parts)
 
 
 def _inverse(t: float, threshold: float | None) -> float:
@@ -364,15 +364,15 @@ def residuals_figure(mean_photons, residuals, labels=None) -> str:
     order = np.argsort(mean_photons, kind="stable")
     n_probes, n_outcomes = residuals.shape
     entries = [{"text": str(k), "colour": outcome_colour(k), "patch": True} for k in range(n_outcomes)]
-    parts, legend_height = _legend([("outcome", entries)], 70, 8, FIGURE_WIDTH - 80)
+    parts, legend_height = legend([("outcome", entries)], 70, 8, FIGURE_WIDTH - 80)
     names = [str(labels[i]) for i in order] if labels else [f"{mean_photons[i]:.3g}" for i in order]
     names = [n if len(n) <= 18 else n[:17] + "\u2026" for n in names]
     step = max(1, math.ceil(n_probes / 40))
     # rotated labels: generous width estimate, since symbols such as '<' are wider than average glyphs
     label_room = 1.25 * max(_text_width(n, 12) for n in names[::step]) * math.sin(math.radians(55)) + 14
     reach = max(3.0, 1.08 * float(np.nanmax(np.abs(residuals), initial=0.0)))
-    panel = _Panel((70, 24 + legend_height, FIGURE_WIDTH - 84, 300), (-0.6, n_probes - 0.4), (-reach, reach))
-    panel.axes([], _linear_ticks(-reach, reach, 8), None, "standardised residual", grid="y")
+    panel = Panel((70, 24 + legend_height, FIGURE_WIDTH - 84, 300), (-0.6, n_probes - 0.4), (-reach, reach))
+    panel.axes([], linear_ticks(-reach, reach, 8), None, "standardised residual", grid="y")
     position = np.arange(n_probes, dtype=float)
     for i in range(1, n_probes, 2):  # alternate shading groups the bars of one probe
         x0, x1 = panel.px(i - 0.5), panel.px(i + 0.5)
@@ -391,7 +391,7 @@ def residuals_figure(mean_photons, residuals, labels=None) -> str:
     xlabel = "probe (ordered by mean photon number)" + ("" if labels else "; tick = mean photons")
     parts.append(panel.svg())
     parts.append(_text(panel.x + panel.width / 2, bottom + label_room + 24, xlabel, size=13.5))
-    return _document(FIGURE_WIDTH, bottom + label_room + 36, "Standardised residuals", parts)
+    return svg_document(FIGURE_WIDTH, bottom + label_room + 36, "Standardised residuals", parts)
 
 
 def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_stderr, constrained) -> str:
@@ -407,19 +407,19 @@ def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_
     entries = [{"text": "model", "colour": "#444", "dash": ""},
                {"text": "model, 95 % interval", "colour": "#444", "band": True},
                {"text": "model-free reconstruction", "colour": "#111", "shape": 0, "hollow": True}]
-    parts, legend_height = _legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
-    boxes, lowest, height = _panel_boxes(n_outcomes, 50 + legend_height, 70, 48)
+    parts, legend_height = legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
+    boxes, lowest, height = panel_boxes(n_outcomes, 50 + legend_height, 70, 48)
     xlim = (photons.min() - 0.6, photons.max() + 0.6) if photons.size else (-0.6, 0.6)
-    xticks = [(v, t) for v, t in _linear_ticks(max(xlim[0], 0), xlim[1], 7) if float(v).is_integer()]
+    xticks = [(v, t) for v, t in linear_ticks(max(xlim[0], 0), xlim[1], 7) if float(v).is_integer()]
     for k, box in enumerate(boxes):
         colour, p = outcome_colour(k), photons.astype(int)
         model, se = model_theta[k, p], model_stderr[k, p]
         recon, recon_se = reconstruction_theta[k, p], np.nan_to_num(reconstruction_stderr[k, p])
         ylim = _limits(model - 1.96 * se, model + 1.96 * se, recon - recon_se, recon + recon_se, include=[0.0])
         ylim = (max(ylim[0], -0.05), min(ylim[1], 1.05))
-        panel = _Panel(box, xlim, ylim)
+        panel = Panel(box, xlim, ylim)
         left = k % 3 == 0
-        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], _linear_ticks(*ylim, 4),
+        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], linear_ticks(*ylim, 4),
                    "photon number n" if lowest[k] else None, "P(k | n)" if left else None, f"outcome {k}")
         panel.band(photons, model - 1.96 * se, model + 1.96 * se, colour)
         panel.line(photons, model, colour, 1.5)
@@ -427,7 +427,7 @@ def povm_figure(model_theta, model_stderr, reconstruction_theta, reconstruction_
         panel.error_bars(photons, value - error, value + error, "#111")
         panel.points(photons, value, "#111", 0, hollow=True)
         parts.append(panel.svg())
-    return _document(FIGURE_WIDTH, height + 30, "Parametric and model-free POVM elements", parts)
+    return svg_document(FIGURE_WIDTH, height + 30, "Parametric and model-free POVM elements", parts)
 
 
 def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dict], model_points=None) -> str:
@@ -452,18 +452,18 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
         entries.append({"text": "pointwise (displaced-thermal probes)", "colour": "#111", "shape": 0, "hollow": True})
     if model_points:
         entries.append({"text": "model through the pointwise estimator (filled triangles)", "colour": "#444", "shape": 2})
-    parts, legend_height = _legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
-    boxes, lowest, height = _panel_boxes(n_outcomes, 50 + legend_height, 70, 64)
+    parts, legend_height = legend([(None, entries)], 70, 8, FIGURE_WIDTH - 80)
+    boxes, lowest, height = panel_boxes(n_outcomes, 50 + legend_height, 70, 64)
     xlim = (float(re_alpha.min()), float(re_alpha.max()))
-    xticks = _linear_ticks(*xlim, 7)
+    xticks = linear_ticks(*xlim, 7)
     for k, box in enumerate(boxes):
         curve = smoothed[k]["value"] if k < len(smoothed) else []
         dot = points[k] if k < len(points) else {"re_alpha": [], "value": [], "stderr": []}
         value, error = np.asarray(dot["value"], dtype=float), np.asarray(dot["stderr"], dtype=float)
         drawn_model = model_points[k]["value"] if model_points and k < len(model_points) else []
         ylim = _limits(model_values[k], curve, value - error, value + error, drawn_model, include=[0.0])
-        panel = _Panel(box, xlim, ylim)
-        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], _linear_ticks(*ylim, 5),
+        panel = Panel(box, xlim, ylim)
+        panel.axes([(v, t if lowest[k] else None) for v, t in xticks], linear_ticks(*ylim, 5),
                    "Re(alpha)  [Im(alpha) = 0], linear" if lowest[k] else None, "W(alpha), linear" if k % 3 == 0 else None,
                    f"outcome {k}")
         colour = outcome_colour(k)
@@ -480,4 +480,4 @@ def wigner_figure(re_alpha, model_values, points: list[dict], smoothed: list[dic
             panel.points(np.asarray(model_points[k]["re_alpha"], dtype=float),
                          np.asarray(model_points[k]["value"], dtype=float), colour, 2)
         parts.append(panel.svg())
-    return _document(FIGURE_WIDTH, height + 30, "Wigner functions of the POVM elements along the real axis", parts)
+    return svg_document(FIGURE_WIDTH, height + 30, "Wigner functions of the POVM elements along the real axis", parts)
