@@ -13,7 +13,7 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	$(BIN)/povmfit demo --out demo-output
+	$(BIN)/povmfit demo --out demo-output --overwrite
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

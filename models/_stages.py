@@ -10,6 +10,9 @@ where fits most often end up.
 """
 from __future__ import annotations
 
+import decimal
+import functools
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -28,7 +31,10 @@ __all__ = [
     "saturation_matrix",
 ]
 
-_COMB_CAP = 1e300
+_SQRT_TWO_PI_DIGITS = "2.506628274631000502415765284811045253006986740609938316629923"
+_EXACT_STIRLING_BELOW = 100  # Stirling errors below this are summed in 50-digit decimals
+_DEVIANCE_SERIES_BELOW = 0.25  # |x - m|/(x + m) below this uses the series of the deviance term
+_DEVIANCE_SERIES_TERMS = 15  # 0.25^(2*15) < 1e-18: the series is exhausted in double precision
 
 
 def _log_comb(n, k):
@@ -40,34 +46,155 @@ def _powers(x, count: int):
     return jnp.cumprod(jnp.concatenate([jnp.ones(1), jnp.full(count - 1, 1.0) * x]))
 
 
+@functools.lru_cache(maxsize=8)
+def _stirling_errors(size: int) -> np.ndarray:
+    """delta(n) = ln n! - (n + 1/2) ln n + n - ln sqrt(2 pi) for n = 0..size-1 (delta(0) = 0, unused).
+
+    Below 100 the value is summed exactly in 50-digit decimal arithmetic; above, the Stirling
+    series 1/(12n) - 1/(360n^3) + 1/(1260n^5) - 1/(1680n^7) + 1/(1188n^9), whose next term is
+    below 1e-21 there. Both are correct to the last bit of a double.
+    """
+    table = np.zeros(size)
+    with decimal.localcontext() as context:
+        context.prec = 50
+        log_root = decimal.Decimal(_SQRT_TWO_PI_DIGITS).ln()
+        log_factorial = decimal.Decimal(0)
+        for n in range(1, min(size, _EXACT_STIRLING_BELOW)):
+            d = decimal.Decimal(n)
+            log_factorial += d.ln()
+            table[n] = float(log_factorial - (d + decimal.Decimal("0.5")) * d.ln() + d - log_root)
+    if size > _EXACT_STIRLING_BELOW:
+        n = np.arange(_EXACT_STIRLING_BELOW, size, dtype=float)
+        nn = n * n
+        table[_EXACT_STIRLING_BELOW:] = (1 / 12 - (1 / 360 - (1 / 1260 - (1 / 1680 - 1 / 1188 / nn) / nn) / nn) / nn) / n
+    table.setflags(write=False)
+    return table
+
+
+def _split_product(n, p):
+    """n * p = high + low exactly (Dekker's product by Veltkamp splitting, no fused multiply-add)."""
+    high = n * p
+    factor = 134217729.0  # 2^27 + 1
+    n_big = factor * n
+    n_hi = n_big - (n_big - n)
+    n_lo = n - n_hi
+    p_big = factor * p
+    p_hi = p_big - (p_big - p)
+    p_lo = p - p_hi
+    low = ((n_hi * p_hi - high) + n_hi * p_lo + n_lo * p_hi) + n_lo * p_lo
+    return high, low
+
+
+def _log1p(z):
+    """log(1 + z) to a few ulps using only ``log`` (XLA's own log1p is off by up to ~100 ulps
+    on CPU): log(u) z/(u - 1) with u = 1 + z rounded (D. Goldberg, ACM Comput. Surv. 23, 5
+    (1991), theorem 4). The correction factor z/(u - 1), within an ulp of 1, is held out of
+    the derivative, which is then 1/u = 1/(1 + z) to rounding."""
+    u = 1.0 + z
+    exact = u == 1.0
+    factor = jax.lax.stop_gradient(jnp.where(exact, 1.0, z / jnp.where(exact, 1.0, u - 1.0)))
+    return jnp.where(exact, z, jnp.log(u) * factor)
+
+
+def _deviance_term(x, trials, p):
+    """D(x, m) = x ln(x/m) + m - x with m = trials * p, for x >= 1 and m > 0.
+
+    ``x - m`` is formed from the exact product ``trials * p`` so that the deviance keeps full
+    relative accuracy even for 10^6 trials. Near the mean (|v| < 1/4) the series
+    ``(x - m) v + 2 x sum_j v^(2j+1)/(2j+1)``, v = (x - m)/(x + m) (C. Loader, "Fast and
+    accurate computation of binomial probabilities", 2000) is summed by Horner's rule;
+    elsewhere ``x log1p((x - m)/m) - (x - m)`` is well conditioned.
+    """
+    high, low = _split_product(trials, p)
+    difference = (x - high) - low
+    mean = high + low
+    v = difference / (x + mean)
+    v2 = v * v
+    tail = 0.0
+    for j in range(_DEVIANCE_SERIES_TERMS, 0, -1):
+        tail = v2 * (1.0 / (2 * j + 1) + tail)
+    series = difference * v + 2.0 * x * v * tail
+    near = jnp.abs(v) < _DEVIANCE_SERIES_BELOW
+    closed = x * _log1p(jnp.where(near, 0.0, difference / mean)) - difference
+    return jnp.where(near, series, closed)
+
+
+def _binomial_pmf(p, trials, successes, size: int):
+    """Binomial pmf C(n, k) p^k (1-p)^(n-k) elementwise, accurate to a few ulps (relative) for
+    every n < ``size`` (0 outside 0 <= k <= n).
+
+    Inside 0 < p < 1 the saddle-point form of Loader (2000) is used:
+    ``sqrt(n / (2 pi k (n-k))) exp(delta(n) - delta(k) - delta(n-k) - D(k, np) - D(n-k, nq))``
+    with the Stirling errors ``delta`` and deviance terms ``D`` (:func:`_deviance_term`), so no
+    large logarithm is ever subtracted; its rounding grows only with |ln pmf|, never with n.
+    ``k = 0`` and ``k = n`` are ``q^n`` and ``p^n``. At p = 0 or 1 a power table gives the
+    exact value and the exact first and second derivatives. ``trials`` and ``successes`` are integer arrays of
+    one shape (numpy or JAX).
+    """
+    n = jnp.asarray(trials)
+    k = jnp.asarray(successes)
+    valid = (k >= 0) & (k <= n)
+    k = jnp.where(valid, k, 0)
+    n = jnp.where(valid, n, 0)
+    rest = n - k
+    middle = (k > 0) & (rest > 0)
+    nf = n.astype(jnp.float64)
+    kf = jnp.where(middle, k, 1).astype(jnp.float64)
+    rf = jnp.where(middle, rest, 1).astype(jnp.float64)
+    mf = jnp.where(middle, nf, 2.0)
+    stirling = jnp.asarray(_stirling_errors(size))
+    log_correction = stirling[n] - stirling[k] - stirling[rest]
+    root = jnp.sqrt(mf / (2.0 * np.pi * kf * rf))
+
+    def interior(p):
+        p_safe = jnp.where((p > 0.0) & (p < 1.0), p, 0.5)
+        q_safe = 1.0 - p_safe
+        saddle = root * jnp.exp(log_correction - _deviance_term(kf, mf, p_safe) - _deviance_term(rf, mf, q_safe))
+        ends = jnp.exp(nf * jnp.where(k == 0, _log1p(-p_safe), jnp.log(p_safe)))
+        return jnp.where(middle, saddle, ends)
+
+    def edge(p):
+        # p = 0 or 1: C(n, k) p^k q^(n-k) from power tables. Only C(n, j) with j = min(k, n-k)
+        # <= 2 is kept: the other entries and their first and second derivatives vanish there.
+        fewest = jnp.minimum(k, rest)
+        comb = jnp.where(fewest == 0, 1.0, jnp.where(fewest == 1, nf, jnp.where(fewest == 2, nf * (nf - 1) / 2, 0.0)))
+        return comb * _powers(p, size)[k] * _powers(1.0 - p, size)[rest]
+
+    inside = (p > 0.0) & (p < 1.0)
+    return jnp.where(valid, jnp.where(inside, interior(p), edge(p)), 0.0)
+
+
+_binomial_pmf_compiled = jax.jit(_binomial_pmf, static_argnums=3)
+
+
 def _binomial_table(p, trials: np.ndarray, successes: np.ndarray):
     """Binomial pmf C(trials, successes) p^successes (1-p)^(trials-successes), elementwise.
 
     ``trials`` and ``successes`` are integer numpy arrays of one shape; entries with
-    successes outside 0..trials are 0. Inside (0, 1) the log form is used (no overflow); at the
-    edges p = 0 or 1 a power table gives the exact value and derivative.
+    successes outside 0..trials are 0. Accurate to a few ulps for any size (see
+    :func:`_binomial_pmf`); exact value and derivative at p = 0 and p = 1.
     """
     trials = np.asarray(trials)
     successes = np.asarray(successes)
-    valid = (successes >= 0) & (successes <= trials)
-    k = np.where(valid, successes, 0).astype(float)
-    n = np.where(valid, trials, 0).astype(float)
-    log_comb = _log_comb(n, k)
-    inside = (p > 0.0) & (p < 1.0)
-    p_safe = jnp.where(inside, p, 0.5)
-    log_form = jnp.exp(log_comb + k * jnp.log(p_safe) + (n - k) * jnp.log1p(-p_safe))
-    size = int(max(n.max(initial=0), 0)) + 1
-    p_pow = _powers(p, size)
-    q_pow = _powers(1.0 - p, size)
-    comb = np.minimum(np.exp(np.minimum(log_comb, 700.0)), _COMB_CAP)
-    edge_form = comb * p_pow[k.astype(int)] * q_pow[(n - k).astype(int)]
-    return jnp.where(valid, jnp.where(inside, log_form, edge_form), 0.0)
+    size = int(max(trials.max(initial=0), 0)) + 1
+    return _binomial_pmf_compiled(p, trials, successes, max(size, 2))
+
+
+@functools.partial(jax.jit, static_argnums=1)
+def _loss_matrix(efficiency, n_photons: int):
+    m = jnp.arange(n_photons)[:, None]
+    n = jnp.arange(n_photons)[None, :]
+    return _binomial_pmf(efficiency, n, m, max(n_photons, 2))
 
 
 def loss_matrix(efficiency, n_photons: int):
-    """Binomial thinning: ``M[m, n] = C(n, m) eta^m (1-eta)^(n-m)``, shape (n_photons, n_photons)."""
-    m, n = np.meshgrid(np.arange(n_photons), np.arange(n_photons), indexing="ij")
-    return _binomial_table(efficiency, n, m)
+    """Binomial thinning: ``M[m, n] = C(n, m) eta^m (1-eta)^(n-m)``, shape (n_photons, n_photons).
+
+    Every entry is within a few ulps of the exact binomial probability (the rounding grows
+    with |ln M[m, n]|, not with n), so columns sum to one to rounding for any n_photons;
+    the derivative in ``efficiency`` is exact, also at 0 and 1.
+    """
+    return _loss_matrix(jnp.asarray(efficiency, dtype=jnp.float64), int(n_photons))
 
 
 def uniform_pixel_matrix(pixels: int, n_photons: int):

@@ -121,3 +121,25 @@ def test_help_texts_carry_examples():
     actions = {a.dest: a for a in parser._actions}["verb"].choices
     for verb in ("emulate", "simulate"):
         assert f"povmfit {verb} " in actions[verb].format_help()
+
+
+@pytest.mark.parametrize("extra, field", [(["--shots", str(10**20)], "--shots"), (["--shots", "-5"], "--shots"),
+                                          (["--ensemble", str(10**9)], "--ensemble"), (["--ensemble", "0"], "--ensemble")])
+def test_absurd_shots_and_ensembles_are_refused_naming_the_flag(detector, tmp_path, extra, field):
+    code, out, err = _run(["emulate", detector, "--input", "coherent:1", *extra, "--out", tmp_path / "x.csv"])
+    assert code == 2 and out == "" and not (tmp_path / "x.csv").exists()
+    assert len(err.strip().splitlines()) == 1 and field in err
+
+
+def test_fock_beyond_the_scan_gives_one_warning_line(tmp_path):
+    model = parse_model_spec("array:4+dark")
+    record = DetectorRecord(model, {"efficiency": 0.7, "dark_probability": 0.02}, np.diag([1e-4, 1e-6]), None,
+                            {"constrained_photons": 9})
+    path = tmp_path / "detector.json"
+    save_detector(record, path)
+    code, out, err = _run(["emulate", path, "--input", "fock:20", "--shots", "10", "--seed", "1"])
+    assert code == 0 and out.startswith("outcome,count,probability")
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "warning" in lines[0] and "above 9 photons" in lines[0]
+    probabilities = [float(line.split(",")[2]) for line in out.strip().splitlines()[1:]]
+    assert abs(sum(probabilities) - 1) < 1e-15  # the emulator's probabilities sum to one

@@ -84,3 +84,30 @@ def test_cross_check_objects_to_a_wrong_model(scan_file, tmp_path):
     sheet = json.loads((out / "datasheet.json").read_text())
     assert sheet["goodness_of_fit"]["p_value"] < 1e-6
     assert sheet["cross_check"]["verdict"].startswith("tension")
+
+
+def test_calibration_uncertainty_zero_means_exact_probes(scan_file, tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(["fit", str(scan_file), "--model", "array:3+dark", "--calibration-uncertainty", "0",
+                 "--out", str(out), "--quiet", "--no-report", "--jobs", "1"]) == 0
+    sheet = json.loads((out / "datasheet.json").read_text())
+    assert sheet["calibration"]["included"] is False and "exclude" in sheet["calibration"]["note"]
+    for bad in ("-0.1", "nan", "0.5", "inf"):
+        assert main(["fit", str(scan_file), "--model", "array:3+dark", "--calibration-uncertainty", bad,
+                     "--out", str(tmp_path / "x")]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and "--calibration-uncertainty" in err[0]
+    assert not (tmp_path / "x").exists()
+
+
+def test_rerun_into_results_needs_overwrite_which_replaces_the_whole_set(scan_file, tmp_path, capsys):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "report.html").write_text("another scan's report")
+    args = ["fit", str(scan_file), "--model", "array:3+dark", "--out", str(out), "--quiet", "--no-report", "--jobs", "1"]
+    assert main(args) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(args + ["--overwrite"]) == 0
+    names = {p.name for p in out.iterdir()}
+    assert "report.html" not in names and {"datasheet.json", "detector.json", "povm.csv"} <= names
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]  # no staging folder left

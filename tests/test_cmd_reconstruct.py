@@ -49,6 +49,24 @@ def test_reconstruct_writes_both_tables(tmp_path, capsys):
     assert {float(r["re_alpha"]) for r in pointwise} == {0.0, 1.0}  # the two displacements with 3 levels
     assert {r["source"] for r in wigner} == {"pointwise", "smoothed"}
     assert summary["wigner_points"] == 2
+    assert summary["povm"]["method"] == "least_squares"  # the default estimator
+
+
+def test_method_option_selects_the_estimator(tmp_path, capsys):
+    # Source: the library call with the same keyword (the verb is a thin layer over it).
+    from povmfit.fitting.data.scan import load_scan
+    from povmfit.fitting.tomography.model_free import reconstruct_scan
+
+    scan = tmp_path / "device.csv"
+    write_scan(scan)
+    code = main(["reconstruct", str(scan), "--out", str(tmp_path / "out"), "--bootstrap", "0", "--json",
+                 "--method", "least-squares"])
+    assert code == 0
+    assert json.loads(capsys.readouterr().out)["povm"]["method"] == "least_squares"
+    expected = reconstruct_scan(load_scan(scan), bootstrap=0, seed=0, method="least_squares")
+    written = read(tmp_path / "out" / "povm.csv")
+    np.testing.assert_allclose([float(r["probability"]) for r in written],
+                               expected.reconstruction.theta.T.ravel(), atol=1e-12)
 
 
 def test_default_output_folder_and_bad_input(tmp_path, monkeypatch, capsys):

@@ -142,3 +142,37 @@ def test_ensemble_falls_back_to_clipping_with_a_warning():
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         assert draw_parameter_ensemble(record, 5, seed=1).shape == (5, 6)  # 5 draws fit by rejection
+
+
+@pytest.mark.parametrize(
+    "edit, message",
+    [
+        (lambda d: d["parameters"].update(dark_probability=-1e-3), "parameters.dark_probability.*outside its bounds"),
+        (lambda d: d["parameters"].update(efficiency=1.0000001), "parameters.efficiency.*outside its bounds"),
+        (lambda d: d.update(schema="someone.else/1"), "field 'schema'"),
+        (lambda d: d["covariance"][1].__setitem__(1, -0.5), "covariance"),
+    ],
+)
+def test_tampered_values_are_refused_naming_the_field(tmp_path, edit, message):
+    # fault study: efficiency > 1, negative dark values, unknown schema, non-PSD covariance
+    path = _edited(tmp_path, edit)
+    with pytest.raises(DetectorFileError, match=message) as caught:
+        load_detector(path)
+    assert "\n" not in str(caught.value)
+
+
+def test_overflowing_and_nan_numbers_are_refused(tmp_path):
+    path = _edited(tmp_path, lambda d: None)
+    text = path.read_text()
+    for bad in ("1e400", "NaN", "-Infinity"):
+        path.write_text(text.replace('"efficiency": 0.61', f'"efficiency": {bad}', 1))
+        with pytest.raises(DetectorFileError) as caught:
+            load_detector(path)
+        assert "\n" not in str(caught.value)
+
+
+def test_deeply_nested_json_is_refused_with_one_line(tmp_path):
+    path = tmp_path / "detector.json"
+    path.write_text("[" * 100_000 + "]" * 100_000)
+    with pytest.raises(DetectorFileError, match="nested too deeply"):
+        load_detector(path)

@@ -243,3 +243,42 @@ def test_simulated_scan_fed_to_the_fitter_recovers_the_detector():
     result = fit_scan(scan_from_arrays(coherent, thermal, counts), record.model)
     for name, value in truth.items():
         assert abs(result.values[name] - value) < 3 * result.stderr[name], name
+
+
+# ----- normalisation, limits and extrapolation ----------------------------------------------
+@pytest.mark.parametrize("state", ["coherent:3.0", "thermal:2.0", "displaced_thermal:1.5,0.4", "squeezed_vacuum:0.8"])
+def test_probabilities_sum_to_one_to_rounding(state):
+    # Source: probability law; the state's cut tail (< 1e-10) goes to the top outcome
+    # (common practice, no source). pnr:4 keeps "4 or more" in the top outcome, so the
+    # renormalised top outcome must equal 1 - P(0..3), the exact law of the other outcomes.
+    emulator = Emulator.from_record(_record("pnr:4+dark", {"efficiency": 0.8, "dark_mean": 0.05}))
+    q = emulator.probabilities(state)
+    assert abs(q.sum() - 1.0) <= 4 * np.finfo(float).eps
+    assert q[-1] == pytest.approx(1.0 - q[:-1].sum(), abs=4e-16)
+
+
+def test_limits_on_shots_ensemble_and_photons_are_named():
+    emulator = Emulator.from_record(_record("threshold+dark", {"efficiency": 0.5, "dark_probability": 1e-3}))
+    for call, name in ((lambda: emulator.sample("coherent:1", 2**60), "shots"),
+                       (lambda: emulator.sample("coherent:1", float("inf")), "shots"),
+                       (lambda: emulator.ensemble(10**9), "ensemble"),
+                       (lambda: emulator.probabilities("coherent:1e7"), r"1e\+07"),
+                       (lambda: emulator.probabilities("fock:5000"), "limit of 4000")):
+        with pytest.raises(PovmfitError, match=name) as caught:
+            call()
+        assert "\n" not in str(caught.value)
+
+
+def test_fock_input_beyond_the_scanned_photon_numbers_warns():
+    from povmfit.fitting.emulation.emulator import ExtrapolationWarning
+
+    record = _record("threshold+dark", {"efficiency": 0.5, "dark_probability": 1e-3})
+    record = DetectorRecord(record.model, record.parameters, record.covariance, None, {"constrained_photons": 12})
+    emulator = Emulator.from_record(record)
+    with pytest.warns(ExtrapolationWarning, match="above 12 photons"):
+        emulator.probabilities("fock:13")
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ExtrapolationWarning)
+        emulator.probabilities("fock:12")

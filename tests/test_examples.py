@@ -69,3 +69,24 @@ def test_walkthrough_runs_every_cell_and_recovers_the_demo_device():
     assert abs(value - 0.62) < 4 * stderr
     assert "cross-check" in out and "outcome counts for coherent:2.0" in out
     assert "datasheet.json" in out and "report.html" in out
+
+
+def test_bias_sweep_finds_the_simulated_plateau_and_dark_limit():
+    out = run_example("bias_sweep.py", "--workers", "2")
+    assert "6 ok" in out and "figures.csv" in out and "batch_report.html" in out
+    for name in ("plateau start", "dark limit bias"):
+        value, stderr, truth = figure_row(out, name)
+        # the script's truth is the closed form of its sigmoid / exponential device; shot noise
+        # only, 3 standard errors (false failure < 0.3 % each, normal approximation)
+        assert abs(value - truth) < 3 * stderr, name
+
+
+def test_tally_pulse_heights_example_recovers_the_simulated_sensor():
+    out = run_example("tally_pulse_heights.py")
+    assert "wrote scan" in out and "wrote readout" in out
+    for name in ("tally efficiency", "fit efficiency"):
+        value, stderr, truth = figure_row(out, name)
+        # the script simulates efficiency 0.81 by Monte Carlo (Poisson photons of a Gaussian
+        # mixture of coherent states, binomial loss); shot noise only, 4 standard errors
+        # (false failure 6e-5 each, normal approximation)
+        assert truth == 0.81 and abs(value - truth) < 4 * stderr, name

@@ -13,6 +13,7 @@ LAYERS = {
     "povmfit.fitting.inference": 2,
     "povmfit.fitting.tomography": 2,
     "povmfit.fitting.emulation": 2,
+    "povmfit.fitting.tally": 2,
     "povmfit.fitting.outputs": 3,
     "povmfit.fitting.workflow": 4,
     "povmfit.fitting.cli": 5,

@@ -1,4 +1,6 @@
-"""Model-free POVM reconstruction: solver, banded storage, cross-validation, bootstrap."""
+"""Model-free POVM reconstruction by regularised least squares (``method="least_squares"``): solver,
+banded storage, cross-validation, bootstrap. The maximum-likelihood estimator is tested in
+test_tomography_likelihood.py."""
 from __future__ import annotations
 
 import json
@@ -152,7 +154,7 @@ def test_reconstruction_recovers_a_simulated_array_within_bootstrap_errors():
     coherent = np.linspace(0.0, 8.0, 40)
     thermal = np.zeros_like(coherent)
     theta, counts = simulate("array:4+dark", truth_values, coherent, thermal, 20_000, seed=1)
-    result = reconstruct_povm(coherent, thermal, counts, grid=[1e-6, 1e-4, 1e-2], folds=3, bootstrap=30, seed=3)
+    result = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-6, 1e-4, 1e-2], folds=3, bootstrap=30, seed=3)
     estimate = result.theta
     assert estimate.shape == theta.shape
     assert np.allclose(estimate.sum(axis=0), 1.0, atol=1e-12) and estimate.min() >= 0
@@ -176,8 +178,8 @@ def test_bootstrap_is_reproducible_with_a_seed():
     coherent = np.linspace(0.0, 4.0, 12)
     thermal = np.zeros_like(coherent)
     _, counts = simulate("threshold+dark", {"efficiency": 0.5, "dark_probability": 0.01}, coherent, thermal, 3000, seed=2)
-    first = reconstruct_povm(coherent, thermal, counts, grid=[1e-3], bootstrap=5, seed=9)
-    second = reconstruct_povm(coherent, thermal, counts, grid=[1e-3], bootstrap=5, seed=9)
+    first = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-3], bootstrap=5, seed=9)
+    second = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-3], bootstrap=5, seed=9)
     np.testing.assert_array_equal(first.stderr, second.stderr)
     assert first.stderr.max() > 0
 
@@ -188,12 +190,12 @@ def test_progress_goes_to_the_callback_and_nothing_is_printed(capsys):
     thermal = np.zeros_like(coherent)
     _, counts = simulate("threshold+dark", {"efficiency": 0.5, "dark_probability": 0.01}, coherent, thermal, 3000, seed=2)
     calls = []
-    result = reconstruct_povm(coherent, thermal, counts, grid=[1e-4, 1e-3, 1e-2], folds=3, bootstrap=7, seed=9,
+    result = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-4, 1e-3, 1e-2], folds=3, bootstrap=7, seed=9,
                               progress=lambda task, done, total: calls.append((task, done, total)))
     # one call per g (3), then one per batch of BATCH = 5 bootstrap problems (5, then 7)
     assert calls == [(CROSS_VALIDATION_TASK, 1, 3), (CROSS_VALIDATION_TASK, 2, 3), (CROSS_VALIDATION_TASK, 3, 3),
                      (BOOTSTRAP_TASK, 5, 7), (BOOTSTRAP_TASK, 7, 7)]
     assert capsys.readouterr() == ("", "")
-    silent = reconstruct_povm(coherent, thermal, counts, grid=[1e-4, 1e-3, 1e-2], folds=3, bootstrap=7, seed=9)
+    silent = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-4, 1e-3, 1e-2], folds=3, bootstrap=7, seed=9)
     np.testing.assert_array_equal(silent.theta, result.theta)  # the callback draws no random numbers
     np.testing.assert_array_equal(silent.stderr, result.stderr)

@@ -180,9 +180,9 @@ def test_normal_three_hundred_row_scan_loads(tmp_path):
 
 
 def test_probe_just_below_the_cutoff_limit_is_accepted(tmp_path):
-    needed = choose_cutoff(3000.0, 0.0, tolerance=1e-10)  # independent call: about 3356
+    needed = choose_cutoff(800.0, 0.0, tolerance=1e-10)  # independent call: 987
     assert needed < MAX_CUTOFF
-    scan = load_scan(write(tmp_path, "coherent_photons,thermal_photons,shots,count_0,count_1\n3000,0,5,0,5\n"))
+    scan = load_scan(write(tmp_path, "coherent_photons,thermal_photons,shots,count_0,count_1\n800,0,5,0,5\n"))
     assert scan.n_probes == 1
 
 
@@ -422,3 +422,28 @@ def test_arrays_are_validated_like_files():
     assert isinstance(scan, Scan) and scan.sha256 is None and scan.source == "<memory>"
     np.testing.assert_array_equal(scan.shots, [7, 6])
     assert scan.counts.dtype == np.int64
+
+
+# ----------------------------------------------------------------------------- limits and overflow
+def test_unsigned_counts_above_int64_are_refused_not_wrapped(tmp_path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.table({"coherent_photons": [1.0, 2.0], "thermal_photons": [0.0, 0.0],
+                      "shots": pa.array([2**63 + 5, 10], pa.uint64()),
+                      "count_0": pa.array([2**63, 4], pa.uint64()), "count_1": pa.array([5, 6], pa.uint64())})
+    path = tmp_path / "scan.parquet"
+    pq.write_table(table, path)
+    refusal(path, f"{path}: row 1: column shots", "above the limit 9007199254740992")
+
+
+def test_shots_of_a_probe_may_not_pass_two_to_the_53(tmp_path):
+    # each count is allowed, their sum is not: refused before the int64 sum
+    half = 2**52 + 2
+    path = write(tmp_path, f"coherent_photons,thermal_photons,shots,count_0,count_1\n1,0,{2 * half},{half},{half}\n")
+    refusal(path, f"{path}:2: column shots", "above the limit")
+
+
+def test_long_layout_outcome_limit_is_checked_before_allocating(tmp_path):
+    path = write(tmp_path, "probe,coherent_photons,thermal_photons,outcome,count\na,1,0,0,1\na,1,0,1001,1\n")
+    refusal(path, f"{path}:3: column outcome", "limit 1000")

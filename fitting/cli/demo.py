@@ -3,10 +3,10 @@ eight-bin click detector; see :mod:`povmfit.fitting.data.demo`)."""
 from __future__ import annotations
 
 import argparse
-import shutil
+import dataclasses
 from pathlib import Path
 
-from povmfit.fitting.data.demo import DEMO_CALIBRATION, DEMO_GATE_S, DEMO_TRUTH, demo_scan_path
+from povmfit.fitting.data.demo import DEMO_METADATA, DEMO_CALIBRATION, DEMO_GATE_S, DEMO_TRUTH, demo_scan_path
 
 EPILOG = """example:
   povmfit demo --out demo-output
@@ -22,7 +22,9 @@ def register(subparsers):
         epilog=EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    parser.add_argument("--out", default="povmfit-demo", help="output folder (default: povmfit-demo)")
+    parser.add_argument("--out", default="povmfit-demo", help="output folder (default: povmfit-demo); refused "
+                        "when it already holds files, unless --overwrite")
+    parser.add_argument("--overwrite", action="store_true", help="replace the whole --out folder")
     parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
     return parser
@@ -30,21 +32,27 @@ def register(subparsers):
 
 def run(args) -> int:
     from povmfit.fitting.cli.fit import characterise_for_cli, print_summary
+    from povmfit.fitting.data.files import check_output_folder
+    from povmfit.fitting.data.scan import load_scan
+    from povmfit.fitting.outputs.files import write_characterisation
 
     out_dir = Path(args.out)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    scan_copy = out_dir / "demo_scan.csv"
-    shutil.copyfile(demo_scan_path(), scan_copy)
+    check_output_folder(out_dir, args.overwrite)  # before any work
+    scan_copy = out_dir / "demo_scan.csv"  # written with the other outputs, as one set
+    scan = dataclasses.replace(load_scan(demo_scan_path()), source=str(scan_copy))
     fit_args = argparse.Namespace(
         model="auto", candidates=None, calibration_uncertainty=DEMO_CALIBRATION, gate_duration=DEMO_GATE_S,
-        weighting="deviance", bootstrap=0, seed=0, jobs=2, quiet=args.quiet, json=args.json,
+        weighting="deviance", bootstrap=0, seed=0, jobs=2, quiet=args.quiet, json=args.json, metadata=DEMO_METADATA,
     )
     talk = not args.quiet and not args.json
     if talk:
         print(f"povmfit demo: simulated scan of an invented 8-bin click detector -> {scan_copy}")
-        print(f"true values: {DEMO_TRUTH}\n")
-    result = characterise_for_cli(scan_copy, fit_args)
-    files = result.write(out_dir)
+        print(f"simulated with efficiency {100 * DEMO_TRUTH['efficiency']:g} %, dark_click_probability_per_pixel "
+              f"{100 * DEMO_TRUTH['dark_probability']:g} %, crosstalk_probability {100 * DEMO_TRUTH['crosstalk_probability']:g} %; "
+              f"analysed with a {100 * DEMO_CALIBRATION:g} % probe calibration and a {DEMO_GATE_S * 1e9:g} ns gate\n")
+    result = characterise_for_cli(scan, fit_args)
+    files = write_characterisation(result, out_dir, report=True, overwrite=args.overwrite,
+                                   extra_files={"demo_scan.csv": demo_scan_path()})
     print_summary(result, files, fit_args)
     if talk:
         print(f"\nopen {out_dir / 'report.html'} in a browser to see the fit, the POVM and the Wigner functions.")

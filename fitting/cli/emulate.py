@@ -2,7 +2,8 @@
 
 Output: CSV with columns ``outcome``, ``count``, ``probability`` (one row per outcome),
 printed, or written atomically with ``--out``. ``probability`` is the model's probability
-of the outcome (the ensemble mean with ``--ensemble``); ``count`` is one run of ``--shots``
+of the outcome (the ensemble mean with ``--ensemble``; the probabilities sum to one, the
+state's cut tail below 1e-10 being added to the top outcome); ``count`` is one run of ``--shots``
 shots. With ``--ensemble N`` the run's detector is one of the N parameter draws (the
 detector is fixed but known only within the fit's uncertainty), so repeated runs scatter
 by that uncertainty as well as by shot noise.
@@ -60,25 +61,32 @@ def format_table(counts, probabilities) -> str:
 
 
 def run(args) -> int:
-    if args.shots < 0:
-        raise ArgumentError(f"--shots must be >= 0, got {args.shots}")
-    if args.ensemble is not None and args.ensemble < 1:
-        raise ArgumentError(f"--ensemble must be >= 1, got {args.ensemble}")
-    if args.seed is not None and args.seed < 0:
-        raise ArgumentError(f"--seed must be >= 0, got {args.seed}")
-    from povmfit.fitting.emulation.emulator import Emulator
+    import warnings
 
+    from povmfit.fitting.emulation.emulator import MAX_ENSEMBLE, MAX_SHOTS, Emulator, ExtrapolationWarning
+
+    if not 0 <= args.shots <= MAX_SHOTS:
+        raise ArgumentError(f"--shots: expected a whole number from 0 to {MAX_SHOTS}, got {args.shots}")
+    if args.ensemble is not None and not 1 <= args.ensemble <= MAX_ENSEMBLE:
+        raise ArgumentError(f"--ensemble: expected a whole number from 1 to {MAX_ENSEMBLE}, got {args.ensemble}")
+    if args.seed is not None and not 0 <= args.seed < 2**128:
+        raise ArgumentError(f"--seed must be a whole number from 0 to 2^128 - 1, got {args.seed}")
     emulator = Emulator.from_file(args.detector, args.povm_source)
     if args.ensemble is not None:
         emulator = emulator.ensemble(args.ensemble, seed=args.seed)
-    try:
-        probabilities = emulator.probabilities(args.input)
-    except ValueError as error:
-        if isinstance(error, ArgumentError):
-            raise
-        raise ArgumentError(f"--input {args.input}: {error}") from None
-    # a separate stream for the counts, so the ensemble draw does not shift them
-    counts = emulator.sample(args.input, args.shots, seed=None if args.seed is None else [args.seed, 1])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", ExtrapolationWarning)
+        try:
+            probabilities = emulator.probabilities(args.input)
+        except ValueError as error:
+            if isinstance(error, ArgumentError):
+                raise
+            raise ArgumentError(f"--input {args.input}: {error}") from None
+        # a separate stream for the counts, so the ensemble draw does not shift them
+        counts = emulator.sample(args.input, args.shots, seed=None if args.seed is None else [args.seed, 1])
+    for warning in [w for w in caught if issubclass(w.category, ExtrapolationWarning)][:1]:  # one line
+        if issubclass(warning.category, ExtrapolationWarning):
+            print(f"povmfit emulate: warning: {warning.message}", file=sys.stderr)
     text = format_table(counts, probabilities)
     if args.out:
         atomic_write_text(args.out, text)

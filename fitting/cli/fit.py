@@ -46,9 +46,16 @@ def add_fit_arguments(parser, scan_required: bool = True):
                         help="residual weighting (deviance = maximum likelihood)")
     parser.add_argument("--bootstrap", type=int, default=0, metavar="N", help="parametric bootstrap resamples")
     parser.add_argument("--seed", type=int, default=0, help="seed for bootstrap and cross-validation")
+    parser.add_argument("--meta", action="append", default=None, metavar="KEY=VALUE",
+                        help="a condition of the measurement for the datasheet and report, repeatable "
+                        "(device, serial, wavelength_nm, temperature_k, bias_current_ua, overvoltage_v, "
+                        "repetition_rate_hz, operator, notes; also read from SCAN.meta.json beside the scan)")
     parser.add_argument("--jobs", type=int, default=2, metavar="N",
                         help="processes (default 2: the model-free POVM beside the model ranking; 1: one process)")
-    parser.add_argument("--out", default=None, help="output folder (default: SCAN_STEM.povmfit/)")
+    parser.add_argument("--out", default=None, help="output folder (default: SCAN_STEM.povmfit/); refused when it "
+                        "already holds files, unless --overwrite")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace the whole --out folder if it already holds results")
     parser.add_argument("--no-report", action="store_true", help="skip report.html and the plots")
     parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
@@ -71,10 +78,13 @@ def validate_options(args):
 
 
 def run(args) -> int:
+    from povmfit.fitting.data.files import check_output_folder
+
     validate_options(args)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
+    check_output_folder(out_dir, args.overwrite)  # before any work
     result = characterise_for_cli(args.scan, args)
-    files = result.write(out_dir, report=not args.no_report)
+    files = result.write(out_dir, report=not args.no_report, overwrite=args.overwrite)
     print_summary(result, files, args)
     return 0
 
@@ -86,13 +96,16 @@ def characterise_for_cli(scan, args):
     from povmfit.fitting.outputs.terminal import TerminalProgress
     from povmfit.fitting.workflow.characterise import characterise
 
+    from povmfit.fitting.data.metadata import parse_meta_pairs
+
+    metadata = {**getattr(args, "metadata", {}), **parse_meta_pairs(getattr(args, "meta", None))}
     progress = None if args.quiet or args.json else TerminalProgress()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
         result = characterise(
             scan, args.model, candidates=args.candidates, calibration_uncertainty=args.calibration_uncertainty,
             gate_duration=args.gate_duration, weighting=args.weighting, bootstrap=args.bootstrap, seed=args.seed,
-            n_jobs=args.jobs, progress=progress,
+            n_jobs=args.jobs, metadata=metadata, progress=progress,
         )
     for warning in caught:
         if issubclass(warning.category, UserWarning) and warning.category.__module__.startswith("povmfit"):

@@ -4,19 +4,24 @@ Each verb lives in its own module ``povmfit.fitting.cli.<verb>`` exposing
 ``register(subparsers)`` (adds its parser, with ``--help`` text and an example) and
 ``run(args) -> int``; a verb turns options into keyword arguments of a library function.
 The library's typed errors (:class:`PovmfitError` and subclasses) are printed as one line
-on stderr and the exit code is 2.
+on stderr and the exit code is 2. Ctrl-C (SIGINT) prints one line and exits with 130 after
+the worker processes are stopped and partial outputs removed; the process then ends at once
+(``os._exit``), so no native library thread can abort the interpreter's shutdown.
 """
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 import povmfit
 from povmfit.fitting.data.errors import PovmfitError
 
 
-VERBS = ("fit", "reconstruct", "emulate", "simulate", "demo")
+VERBS = ("fit", "reconstruct", "emulate", "simulate", "demo",
+         "batch", "plan",
+         "tally")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -47,13 +52,33 @@ def main(argv=None) -> int:
     try:
         return int(args.handler(args) or 0)
     except PovmfitError as error:
-        print(f"povmfit {args.verb}: error: {error}", file=sys.stderr)
+        print(f"povmfit {args.verb}: error: {' '.join(str(error).split())}", file=sys.stderr)
         return 2
+    except KeyboardInterrupt:
+        print(f"povmfit {args.verb}: interrupted (no partial output is left behind)", file=sys.stderr)
+        return INTERRUPTED
+
+
+INTERRUPTED = 130  # the shell's code for a command ended by SIGINT (128 + 2)
 
 
 def entry() -> None:
     """Console entry point."""
-    sys.exit(main())
+    try:
+        code = main()
+    except KeyboardInterrupt:  # Ctrl-C before a verb started (while parsing or importing)
+        print("povmfit: interrupted", file=sys.stderr)
+        code = INTERRUPTED
+    if code == INTERRUPTED:
+        import atexit
+
+        try:
+            atexit._run_exitfuncs()  # release the worker pool's locks, record the cache entries
+        finally:
+            sys.stdout.flush()
+            sys.stderr.flush()
+            os._exit(code)
+    sys.exit(code)
 
 
 if __name__ == "__main__":

@@ -12,13 +12,14 @@ import json
 from pathlib import Path
 
 from povmfit.fitting.data.errors import ArgumentError
-from povmfit.fitting.tomography.model_free import RECONSTRUCTION_BOOTSTRAP
+from povmfit.fitting.tomography.model_free import POVM_METHOD, RECONSTRUCTION_BOOTSTRAP
 
 __all__ = ["register", "run"]
 
 EPILOG = """examples:
   povmfit reconstruct scan.csv                       # results in ./scan.povmfit/
   povmfit reconstruct scan.csv --out rec/ --bootstrap 200 --seed 7 --json
+  povmfit reconstruct scan.csv --method least-squares  # the regularised least-squares estimator
 
 povm.csv lists every (photons, outcome) pair up to the photon-number cutoff; wigner.csv has
 pointwise rows for every displacement probed at two or more thermal levels and the smoothed
@@ -31,7 +32,8 @@ def register(subparsers):
         "reconstruct",
         help="model-free POVM and point-by-point Wigner values",
         description="Reconstruct the detector's diagonal POVM from SCAN without a model "
-        "(regularised least squares, strength chosen by cross-validation) and the Wigner values "
+        "(maximum likelihood on the counts, smoothness penalty chosen by held-out-probe log-likelihood; "
+        "or regularised least squares) and the Wigner values "
         "of every POVM element from displaced-thermal probes; write povm.csv, wigner.csv and "
         "reconstruction.json.",
         epilog=EPILOG,
@@ -45,6 +47,9 @@ def register(subparsers):
     parser.add_argument("--saturation", type=int, default=None, metavar="M",
                         help="saturation photon number of the smoothed Wigner curve "
                              "(default: chosen by AIC up to the pointwise values' M)")
+    parser.add_argument("--method", choices=("likelihood", "least-squares"), default=POVM_METHOD.replace("_", "-"),
+                        help="POVM estimator: multinomial maximum likelihood (default, as in `povmfit fit`) or "
+                             "regularised least squares on the frequencies")
     parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
     return parser
@@ -69,7 +74,7 @@ def run(args) -> int:
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
     progress = None if args.quiet or args.json else TerminalProgress()
     result = reconstruct_scan(scan, bootstrap=args.bootstrap, seed=args.seed, saturation=args.saturation,
-                              progress=progress)
+                              progress=progress, method=args.method.replace("-", "_"))
     files = result.write(out_dir)
     if args.json:
         print(json.dumps({**result.overview(), "outputs": {k: str(v) for k, v in files.items()}}, indent=2))

@@ -12,7 +12,8 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["demo_scan_path", "generate_demo_scan", "DEMO_MODEL", "DEMO_TRUTH", "DEMO_GATE_S", "DEMO_CALIBRATION"]
+__all__ = ["demo_scan_path", "generate_demo_scan", "DEMO_MODEL", "DEMO_TRUTH", "DEMO_GATE_S", "DEMO_CALIBRATION",
+           "DEMO_METADATA"]
 
 DEMO_MODEL = "array:8+dark+crosstalk"
 DEMO_TRUTH = {"efficiency": 0.62, "dark_probability": 2e-3, "crosstalk_probability": 0.04}
@@ -22,6 +23,11 @@ DEMO_SHOTS = 100_000
 DEMO_SEED = 20261201
 DEMO_GATE_S = 100e-9
 DEMO_CALIBRATION = 0.03
+DEMO_METADATA = {
+    "device": "Marlow TM-8 (invented device, simulated data)",
+    "operator": "Fenwick Institute detector group (invented)",
+    "notes": "bundled example of povmfit: counts simulated with efficiency 0.62, dark 2e-3 per bin, crosstalk 0.04",
+}
 
 
 def demo_scan_path() -> Path:

@@ -136,6 +136,8 @@ def load_detector(path) -> DetectorRecord:
     except ValueError as error:
         first = str(error).splitlines()[0]
         raise DetectorFileError(f"{where}: not valid JSON ({first})") from None
+    except RecursionError:
+        raise DetectorFileError(f"{where}: not a detector file (JSON nested too deeply)") from None
     if not isinstance(data, dict):
         raise DetectorFileError(f"{where}: expected a JSON object at the top level")
     return _record_from_dict(data, where)

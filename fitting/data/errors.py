@@ -4,7 +4,7 @@ from __future__ import annotations
 
 __all__ = [
     "PovmfitError", "ArgumentError", "InputFileError", "ScanError", "DetectorFileError", "StateError",
-    "NotIdentifiable",
+    "NotIdentifiable", "OutputError", "WorkerError",
 ]
 
 
@@ -34,3 +34,12 @@ class StateError(PovmfitError):
 
 class NotIdentifiable(PovmfitError):
     """The scan cannot determine the requested model (wrong outcomes, too few probe settings)."""
+
+
+class OutputError(PovmfitError):
+    """An output path cannot receive the results (not a folder, not writable, holds other
+    results without ``overwrite``)."""
+
+
+class WorkerError(PovmfitError):
+    """A worker process died, hung past its time limit or could not start."""

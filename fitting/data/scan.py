@@ -26,9 +26,16 @@ line 1) or ``FILE: row R: column COL: ...`` (Parquet and arrays; R = 1 is the fi
 row). Blank lines in a CSV are skipped. Integer columns accept integral numbers written
 as floats (``12.0``). Duplicate probe settings are separate rows of data.
 
-A probe whose photon-number distribution needs more than :data:`MAX_CUTOFF` photon
-numbers to leave a tail below 1e-10 (see :func:`povmfit.models.choose_cutoff`) is refused,
-and so is a scan whose probes are all dark (no light: nothing identifies the detector).
+Limits, checked before anything is allocated and named in the refusal: a probe whose
+photon-number distribution needs more than :data:`MAX_CUTOFF` photon numbers to leave a tail
+below 1e-10 (see :func:`povmfit.models.choose_cutoff`) is refused -- the limit is that of the
+most restricted candidate model (unequal split ratios), so every probe the loader accepts can
+be fitted by every model; outcomes run at most to ``MAX_OUTCOMES - 1`` (click patterns have at
+most ``MAX_OUTCOMES - 1`` pixels); a count, and the shots of a probe, are at most
+:data:`MAX_SHOTS` (2^53, the largest whole number a double holds exactly), and the shots of
+the whole scan at most 2^62 -- larger totals, and totals that would wrap around, are
+refused, never summed silently. A scan whose probes are all dark (no light: nothing
+identifies the detector) is refused too.
 """
 from __future__ import annotations
 
@@ -49,17 +56,26 @@ from povmfit.fitting.data.files import atomic_write_bytes, atomic_write_text
 from povmfit.fitting.data._scan_cells import _numbers, _read_csv, _read_parquet, _refuse, _Table, _texts
 from povmfit.fitting.data.errors import ScanError
 
-__all__ = ["Scan", "load_scan", "scan_from_arrays", "write_scan", "MAX_CUTOFF", "CUTOFF_TOLERANCE"]
+__all__ = ["Scan", "load_scan", "scan_from_arrays", "write_scan", "MAX_CUTOFF", "MAX_OUTCOMES", "MAX_SHOTS",
+           "MAX_SCAN_SHOTS", "CUTOFF_TOLERANCE"]
 
-MAX_CUTOFF = 4000
-"""Largest photon-number cutoff a probe may need; brighter probes are refused."""
+MAX_CUTOFF = 1000
+"""Largest photon-number cutoff a probe may need; brighter probes are refused. It is the
+limit of the most restricted model stage (unequal split ratios, ``split_pixel_matrix``), so a
+probe the loader accepts can be fitted by every candidate model."""
+MAX_OUTCOMES = 1001
+"""Most outcomes (0 .. 1000) a scan may have; larger outcome numbers are refused before any
+table is allocated."""
+MAX_SHOTS = 2**53
+"""Largest count and largest number of shots of one probe (exact in double precision)."""
+MAX_SCAN_SHOTS = 2**62
+"""Largest number of shots of a whole scan (their sum stays far from int64 wrap-around)."""
 CUTOFF_TOLERANCE = 1e-10
 """Neglected tail mass used to judge a probe's cutoff."""
 
 _PROBE_COLUMNS = ("coherent_photons", "thermal_photons")
 _OPTIONAL_WIDE = ("phase_rad", "probe")
 _COUNT_COLUMN = re.compile(r"count_(0|[1-9][0-9]*)")
-_EXACT_INTEGER_LIMIT = 2.0**53
 _EXACT_CUTOFF_BUDGET = 100_000  # photon numbers evaluated at most to report an exact cutoff
 
 
@@ -147,7 +163,7 @@ class Scan:
 
     def summary(self) -> str:
         """One paragraph: source, probes, outcomes, shots and the probed photon-number ranges."""
-        total = int(self.shots.sum())
+        total = sum(int(s) for s in self.shots)
         return (f"scan {self.source}: {self.n_probes} probes, outcomes 0..{self.max_outcome}, {total:,} shots; "
                 f"coherent photons {self.coherent_photons.min():.3g}..{self.coherent_photons.max():.3g}, "
                 f"thermal photons {self.thermal_photons.min():.3g}..{self.thermal_photons.max():.3g}"
@@ -193,6 +209,9 @@ def _check_integers(values: np.ndarray, name: str, where, what: str = "count") -
         bad = np.flatnonzero(values < 0)
         if bad.size:
             _refuse(where(bad[0]), name, f"{what} must be >= 0, got {values[bad[0]]}")
+        bad = np.flatnonzero(values > _integer_limit(what))
+        if bad.size:
+            _refuse(where(bad[0]), name, f"{what} {values[bad[0]]} is above the limit {_integer_limit(what)}")
         return values.astype(np.int64)
     if values.dtype.kind not in "f":
         raise ScanError(f"{where(0)}: column {name}: expected numbers, got dtype {values.dtype}")
@@ -200,12 +219,18 @@ def _check_integers(values: np.ndarray, name: str, where, what: str = "count") -
     for test, message in (
         (values < 0, "must be >= 0"),
         (values != np.round(values), "must be a whole number"),
-        (np.abs(values) >= _EXACT_INTEGER_LIMIT, "is too large"),
     ):
         bad = np.flatnonzero(test)
         if bad.size:
             _refuse(where(bad[0]), name, f"{what} {message}, got {values[bad[0]]:.17g}")
+    bad = np.flatnonzero(values > _integer_limit(what))
+    if bad.size:
+        _refuse(where(bad[0]), name, f"{what} {values[bad[0]]:.17g} is above the limit {_integer_limit(what)}")
     return values.astype(np.int64)
+
+
+def _integer_limit(what: str) -> int:
+    return MAX_OUTCOMES - 1 if what == "outcome" else MAX_SHOTS
 
 
 def _check_cutoffs(coherent: np.ndarray, thermal: np.ndarray, where) -> None:
@@ -284,6 +309,14 @@ def _validated_scan(coherent, thermal, counts, phase, labels, source, sha256, wh
     if shots is not None:
         shots = _check_integers(shots, "shots", where, what="shots")
     counts = np.column_stack([_check_integers(counts[:, k], count_names[k], where) for k in range(counts.shape[1])])
+    # every count is <= 2^53, so a float sum cannot wrap; it decides before the exact int64 sum
+    rough = counts.sum(axis=1, dtype=float)
+    bad = np.flatnonzero(rough > MAX_SHOTS)
+    if bad.size:
+        _refuse(where(bad[0]), "shots" if shots is not None else count_names[0],
+                f"the counts of this probe sum to about {rough[bad[0]]:.4g}, above the limit {MAX_SHOTS} shots per probe")
+    if rough.sum() > MAX_SCAN_SHOTS:
+        _refuse(source, "shots", f"the scan holds about {rough.sum():.4g} shots, above the limit {MAX_SCAN_SHOTS}")
     totals = counts.sum(axis=1)
     if shots is None:
         shots = totals
@@ -338,6 +371,9 @@ def _require_columns(table: _Table, required, optional) -> None:
 
 def _wide_scan(table: _Table, sha256) -> Scan:
     indices = sorted(int(_COUNT_COLUMN.fullmatch(n).group(1)) for n in table.columns if _COUNT_COLUMN.fullmatch(n))
+    if indices and indices[-1] >= MAX_OUTCOMES:
+        _refuse(table.where(), f"count_{indices[-1]}", f"outcome {indices[-1]} is above the limit "
+                f"{MAX_OUTCOMES - 1} (at most {MAX_OUTCOMES} outcomes)")
     if not indices or indices[0] != 0:
         _refuse(table.where(), "count_0", "required column is missing (outcome columns are count_0 .. count_K)")
     missing = sorted(set(range(indices[-1] + 1)) - set(indices))
@@ -421,6 +457,8 @@ def _pattern_scan(table: _Table, sha256) -> Scan:
         if set(pattern) - {"0", "1"}:
             _refuse(table.where(row), "pattern", f"{pattern!r} contains characters other than 0 and 1")
         width = len(pattern) if width is None else width
+        if width >= MAX_OUTCOMES:
+            _refuse(table.where(row), "pattern", f"{width} pixels, above the limit {MAX_OUTCOMES - 1}")
         if len(pattern) != width:
             _refuse(table.where(row), "pattern", f"{pattern!r} has {len(pattern)} pixels but the first pattern "
                     f"has {width}")
@@ -432,7 +470,11 @@ def _pattern_scan(table: _Table, sha256) -> Scan:
         if pattern in raw[p]:
             _refuse(table.where(row), "pattern", f"pattern {pattern} of probe {labels[p]!r} is listed twice")
         raw[p][pattern] = int(count[row])
-        counts[p, pattern.count("1")] += count[row]
+        clicks = pattern.count("1")
+        if counts[p, clicks] > MAX_SHOTS - count[row]:  # checked before adding: no wrap-around
+            _refuse(table.where(row), "count", f"the counts of probe {labels[p]!r} with {clicks} clicks add up "
+                    f"to more than the limit {MAX_SHOTS}")
+        counts[p, clicks] += count[row]
     where = lambda p: table.where(int(firsts[p]))  # noqa: E731
     return _validated_scan(settings["coherent_photons"], settings["thermal_photons"], counts,
                            settings.get("phase_rad"), labels, table.source, sha256, where,

@@ -111,6 +111,9 @@ def state_distribution(state, tolerance: float = 1e-10) -> np.ndarray:
         "thermal": (0.0, values[0]),
         "displaced_thermal": values,
     }[kind]
+    if coherent + thermal >= _MAX_PHOTONS:  # the mean alone is past the limit: refuse at once
+        raise StateError(f"state {text!r}: mean of {coherent + thermal:g} photons; at most {_MAX_PHOTONS} photon "
+                         "numbers are supported")
     try:
         n = choose_cutoff([coherent], [thermal], tolerance, limit=_MAX_PHOTONS)
     except ValueError as error:

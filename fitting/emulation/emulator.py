@@ -18,6 +18,17 @@ Sources:
   numbers 0..N-1 only: a state with more than 1e-10 of its mass above N is refused.
   Click patterns need a model, so a table-based emulator has none.
 
+Normalisation: a state's photon-number distribution is cut where its tail falls below 1e-10;
+the probabilities of the outcomes are renormalised by adding the missing tail mass (at most
+1e-10) to the top outcome -- the outcome high photon numbers end in -- so they sum to one to
+rounding.
+
+Limits (ArgumentError naming the argument): at most :data:`MAX_SHOTS` shots per run, at most
+:data:`MAX_ENSEMBLE` ensemble members, states needing at most :data:`MAX_PHOTONS` photon
+numbers (the POVM is a dense table). A state with more than 1e-6 of its mass above the
+photon numbers the fitted scan constrained (``provenance.constrained_photons`` of the
+detector file, when present) gives an :class:`ExtrapolationWarning`.
+
 Ensembles: the detector in one experiment is fixed but not exactly known. So
 :meth:`probabilities` returns the ensemble mean, while :meth:`sample`, :meth:`respond` and
 :meth:`patterns` model one experimental run: they draw one ensemble member (with the
@@ -29,6 +40,7 @@ from __future__ import annotations
 
 import functools
 import math
+import warnings
 from pathlib import Path
 
 import jax
@@ -50,9 +62,21 @@ from povmfit.fitting.data.detector_file import DetectorRecord, draw_parameter_en
 from povmfit.fitting.data.states import state_distribution
 from povmfit.fitting.data.errors import ArgumentError, DetectorFileError
 
-__all__ = ["Emulator", "load_povm_csv", "POVM_SUM_TOLERANCE"]
+__all__ = ["Emulator", "load_povm_csv", "POVM_SUM_TOLERANCE", "ExtrapolationWarning", "MAX_SHOTS", "MAX_ENSEMBLE",
+           "MAX_PHOTONS"]
 
 POVM_SUM_TOLERANCE = 1e-6
+MAX_SHOTS = 2**53
+"""Most shots of one emulated run (counts stay exact whole numbers in double precision)."""
+MAX_ENSEMBLE = 100_000
+"""Most parameter draws of an ensemble."""
+MAX_PHOTONS = 4000
+"""Most photon numbers an emulated state may need (the POVM is evaluated as a dense table)."""
+_EXTRAPOLATION_MASS = 1e-6
+
+
+class ExtrapolationWarning(UserWarning):
+    """The input state reaches photon numbers the fitted scan did not constrain."""
 _TAIL_TOLERANCE = 1e-10
 _POVM_COLUMNS = ("photons", "outcome", "probability", "stderr", "source")
 
@@ -111,6 +135,8 @@ class Emulator:
         """A new emulator whose members are ``n`` parameter draws from the fit's covariance."""
         if self.record is None:
             raise ArgumentError("an ensemble needs a fitted detector file (detector.json), not a POVM table")
+        if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or not 1 <= n <= MAX_ENSEMBLE:
+            raise ArgumentError(f"ensemble: expected a whole number of members from 1 to {MAX_ENSEMBLE}, got {n!r}")
         return Emulator(model=self.model, members=draw_parameter_ensemble(self.record, n, seed), record=self.record)
 
     @property
@@ -142,9 +168,28 @@ class Emulator:
 
     # ----- probabilities and histograms ---------------------------------------------------
     def member_probabilities(self, state) -> np.ndarray:
-        """Outcome probabilities of every member, shape (n_members, n_outcomes)."""
+        """Outcome probabilities of every member, shape (n_members, n_outcomes); each row sums
+        to one to rounding (the cut tail, below 1e-10, is added to the top outcome)."""
         p = self._fit_to_table(state_distribution(state))
-        return self.povms(p.size) @ p
+        if p.size > MAX_PHOTONS:
+            raise ArgumentError(f"state {state if isinstance(state, str) else '(array)'}: needs {p.size} photon numbers, "
+                                f"above the emulator's limit of {MAX_PHOTONS}")
+        self._warn_beyond_scan(p, state)
+        q = self.povms(p.size) @ p
+        q[:, -1] += 1.0 - q.sum(axis=1)
+        return q
+
+    def _warn_beyond_scan(self, p: np.ndarray, state) -> None:
+        provenance = self.record.provenance if self.record is not None else {}
+        top = provenance.get("constrained_photons") if isinstance(provenance, dict) else None
+        if not isinstance(top, int) or isinstance(top, bool) or p.size <= top + 1:
+            return
+        beyond = float(p[top + 1:].sum())
+        if beyond > _EXTRAPOLATION_MASS:
+            warnings.warn(f"the input {state if isinstance(state, str) else 'state'} puts {beyond:.3g} of its "
+                          f"probability above {top} photons, beyond the photon numbers the fitted scan "
+                          "constrained: the response there is the model's extrapolation", ExtrapolationWarning,
+                          stacklevel=3)
 
     def probabilities(self, state) -> np.ndarray:
         """Outcome probabilities q[k] = sum_n p(n) theta[k, n] (ensemble mean), shape (n_outcomes,)."""
@@ -225,8 +270,9 @@ class Emulator:
 
 
 def _check_shots(shots) -> int:
-    if isinstance(shots, bool) or int(shots) != shots or shots < 0:
-        raise ValueError(f"shots must be a non-negative integer, got {shots!r}")
+    if isinstance(shots, bool) or not isinstance(shots, (int, np.integer, float)) or not 0 <= shots <= MAX_SHOTS \
+            or int(shots) != shots:
+        raise ArgumentError(f"shots: expected a whole number from 0 to {MAX_SHOTS}, got {shots!r}")
     return int(shots)
 
 

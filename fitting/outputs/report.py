@@ -371,6 +371,12 @@ def render_html(title: str, sections: list[tuple[str, str]], header: str = "") -
             f"<style>{_STYLE}</style></head><body><h1>{_e(title)}</h1>{header}<nav>{nav}</nav>{body}</body></html>\n")
 
 
+def _estimator(reconstruction) -> str:
+    if getattr(reconstruction, "method", "least_squares") == "likelihood":
+        return "maximum likelihood with a smoothness penalty chosen on held-out probes"
+    return "regularised least squares, smoothness chosen by cross-validation"
+
+
 def _saturation(cross: dict) -> str:
     return str(getattr(cross.get("pointwise"), "saturation", "?"))
 
@@ -430,7 +436,8 @@ def write_report(out_dir, scan, result, sheet: dict, comparison, cross: dict) ->
             "at +-2. An adequate model leaves them scattered around zero without structure."))),
         ("POVM", _figure_block(svg_povm, (
             "P(outcome k | n photons): fitted model (line, band = 95 % delta-method interval) and model-free "
-            f"reconstruction (points, bootstrap standard errors), drawn only for photon numbers the probes constrain ({span})."))),
+            f"reconstruction ({_estimator(recon)}; points, bootstrap standard errors), drawn only for photon numbers the "
+            f"probes constrain ({span}). Each panel has its own vertical range (linear)."))),
         ("Wigner functions", _figure_block(svg_wig, (
             "Wigner functions of the POVM elements along the real axis. Axis convention: alpha is the complex amplitude "
             "of the displacement, the horizontal axis is Re(alpha) at Im(alpha) = 0, and the quadrature is "

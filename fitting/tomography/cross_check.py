@@ -10,6 +10,15 @@ of its largest value. The last outcome is left out of the chi-square (every colu
 The reconstruction's errors are correlated across n by the smoothness regulariser and do not
 include its bias, so the chi-square is a summary, not an exact test.
 
+Calibration: when the reconstructions of scans simulated from the model are given
+(``null_draws``, what the whole job already computes), the POVM statistic's distribution
+under the model is taken from them: each simulated reconstruction is scored exactly like the
+data's (against the mean of the other simulations), and the p-value comes from a scaled
+chi-square a chi2_nu with the simulated statistics' mean and variance (a nu = mean,
+2 a^2 nu = variance; Satterthwaite, Biometrics Bull. 2, 110 (1946)), so correlations,
+smoothing and constraints are accounted for. The rank p-value among the simulations is
+reported beside it.
+
 By default the model's Wigner values are what the pointwise estimator would return for the
 model's exact outcome probabilities (same probes, same saturation number M), so the
 estimator's saturation bias cancels in the comparison.
@@ -56,7 +65,7 @@ def _summary(z: np.ndarray, dof: int) -> dict:
             "max_abs_z": float(np.max(np.abs(z))) if z.size else None}
 
 
-def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr) -> dict:
+def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr, null_draws=None) -> dict:
     n = min(model_theta.shape[1], reconstruction.n_photons)
     photons = np.nonzero(reconstruction.constrained[:n])[0]
     sigma = np.sqrt(model_stderr[:, photons] ** 2 + reconstruction_stderr[:, photons] ** 2)
@@ -65,14 +74,46 @@ def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr)
     # entries pinned at 0 or 1 by the constraints have no bootstrap spread at all; differences
     # below POVM_TOLERANCE are treated as agreement.
     floor = np.maximum(3.0 / np.maximum(reconstruction.probe_weight[photons], 1.0), POVM_TOLERANCE)
-    z = (model_theta[:, photons] - reconstruction.theta[:, photons]) / np.maximum(sigma, floor[None, :])
+    scale = np.maximum(sigma, floor[None, :])
+    z = (model_theta[:, photons] - reconstruction.theta[:, photons]) / scale
     out = _summary(z[:-1], z[:-1].size)
+    if null_draws is not None and z.size:
+        out["chi_square_nominal_p_value"] = out["p_value"]
+        out.update(_calibrated(float(np.sum(z[:-1] ** 2)), np.asarray(null_draws, dtype=float)[:, :, photons], scale))
     if z.size:
         # the last outcome is fixed by completeness; it is left out of the statistic and the search
         k, j = np.unravel_index(int(np.argmax(np.abs(z[:-1]))), z[:-1].shape)
         out["largest"] = {"outcome": int(k), "photons": int(photons[j]), "z": float(z[k, j])}
     out["photons_compared"] = photons.tolist()
     out["z"] = z.tolist()
+    return out
+
+
+def null_statistics(draws, scale) -> np.ndarray:
+    """The POVM statistic of each simulated reconstruction under the model: (n_simulations,).
+
+    ``draws`` (S, K, m) are the simulated reconstructions on the compared photon numbers,
+    ``scale`` (K, m) the data's z denominators; simulation s is compared with the mean of the
+    other S - 1 (it is independent of them, as the data's reconstruction is of all S).
+    """
+    s = draws.shape[0]
+    others = (draws.sum(axis=0)[None] - draws) / (s - 1)
+    z = (others - draws) / scale[None]
+    return np.sum(z[:, :-1] ** 2, axis=(1, 2))
+
+
+def _calibrated(statistic: float, draws, scale) -> dict:
+    """p-values of ``statistic`` under the distribution simulated from the model."""
+    null = null_statistics(draws, scale)
+    mean, variance = float(null.mean()), float(null.var(ddof=1))
+    out = {"null": {
+        "simulations": int(null.size), "mean": mean, "sd": float(np.sqrt(variance)),
+        "rank_p_value": float((1 + np.sum(null >= statistic)) / (null.size + 1))}}
+    if mean > 0 and variance > 0:
+        a, nu = variance / (2.0 * mean), 2.0 * mean * mean / variance
+        out["null"].update({"scale": a, "dof": nu})
+        out["p_value"] = float(chdtrc(nu, statistic / a))
+        out["calibration"] = "scaled chi-square fitted to the statistics of the simulated reconstructions"
     return out
 
 
@@ -87,7 +128,7 @@ def _wigner_part(model_values, model_stderr, pointwise) -> dict:
 
 
 def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, model_wigner=None,
-                model_wigner_stderr=None, probes=None, reconstruction_stderr=None) -> dict:
+                model_wigner_stderr=None, probes=None, reconstruction_stderr=None, null_draws=None) -> dict:
     """Compare a fitted model with the reconstructions.
 
     Args:
@@ -102,6 +143,9 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
         reconstruction_stderr: errors of the reconstruction to combine with the model's
             (default ``reconstruction.stderr``; pass zeros when ``model_theta_stderr`` already
             is the spread of reconstructions under the model).
+        null_draws: optional (n_simulations, n_outcomes, n_photons) reconstructions of scans
+            simulated from the model (``model_theta`` then is their mean): the POVM p-value is
+            calibrated on them (module docstring) instead of the nominal chi-square.
     Returns:
         JSON-able dict: ``povm`` {chi_square, dof, p_value, max_abs_z, largest {outcome,
         photons, z}, photons_compared, z (n_outcomes x compared)}; ``wigner`` (or None)
@@ -113,7 +157,7 @@ def cross_check(model_theta, model_theta_stderr, reconstruction, pointwise, mode
     model_theta = np.asarray(model_theta, dtype=float)
     model_stderr = np.zeros_like(model_theta) if model_theta_stderr is None else np.asarray(model_theta_stderr, dtype=float)
     rec_stderr = reconstruction.stderr if reconstruction_stderr is None else np.asarray(reconstruction_stderr, dtype=float)
-    povm = _povm_part(model_theta, model_stderr, reconstruction, rec_stderr)
+    povm = _povm_part(model_theta, model_stderr, reconstruction, rec_stderr, null_draws)
     wigner = None
     if pointwise is not None:
         if model_wigner is None:

@@ -14,22 +14,24 @@ from __future__ import annotations
 
 import numbers
 import os
+from dataclasses import dataclass
 
 from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.scan_reconstruction import ScanReconstruction
 
 __all__ = [
     "reconstruct_scan", "povm_reconstruction", "wigner_reconstructions", "reconstructions_under_model",
-    "RECONSTRUCTION_BOOTSTRAP", "CROSS_CHECK_SIMULATIONS", "WIGNER_METHOD",
+    "RECONSTRUCTION_BOOTSTRAP", "CROSS_CHECK_SIMULATIONS", "WIGNER_METHOD", "POVM_METHOD", "UnderModel",
 ]
 
 RECONSTRUCTION_BOOTSTRAP = 50  # parametric-bootstrap resamples of the POVM and of the Wigner values
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 WIGNER_METHOD = "box"  # the published box-constrained pointwise estimator, outcome by outcome
+POVM_METHOD = "least_squares"  # the default POVM estimator: "least_squares" or "likelihood" (maximum likelihood)
 
 
 def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: int = 0, saturation: int | None = None,
-                     progress=None) -> ScanReconstruction:
+                     progress=None, method: str = POVM_METHOD) -> ScanReconstruction:
     """Model-free reconstructions of a scan: POVM, pointwise and smoothed Wigner values, phase test.
 
     Args:
@@ -40,6 +42,8 @@ def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: i
         saturation: saturation photon number M of the smoothed Wigner curve; default: chosen
             by AIC among 1..M of the pointwise values.
         progress: optional callback ``progress(task, done, total)``; nothing is printed.
+        method: POVM estimator, "least_squares" (regularised least squares on the
+            frequencies, the default) or "likelihood" (multinomial maximum likelihood).
     Returns:
         :class:`ScanReconstruction` (``write(out_dir)`` gives povm.csv, wigner.csv and
         reconstruction.json).
@@ -49,17 +53,20 @@ def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: i
     seed = _whole_number(seed, "seed", 0)
     if saturation is not None:
         saturation = _whole_number(saturation, "saturation", 1)
-    reconstruction = povm_reconstruction(scan, seed, bootstrap, progress=progress)
+    if method not in ("likelihood", "least_squares"):
+        raise ArgumentError(f"method: expected 'likelihood' or 'least_squares', got {method!r}")
+    reconstruction = povm_reconstruction(scan, seed, bootstrap, progress=progress, method=method)
     return ScanReconstruction.from_parts(
         scan, reconstruction, wigner_reconstructions(scan, seed, bootstrap, saturation=saturation, progress=progress))
 
 
-def povm_reconstruction(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, progress=None):
+def povm_reconstruction(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, progress=None,
+                        method: str = POVM_METHOD):
     """The full diagonal POVM (cross-validated regularisation, bootstrap errors): a ``Reconstruction``."""
     from povmfit.fitting.tomography.reconstruct import reconstruct_povm
 
-    return reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=bootstrap, seed=seed,
-                            progress=progress)
+    return reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, method=method,
+                            bootstrap=bootstrap, seed=seed, progress=progress)
 
 
 def wigner_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, saturation: int | None = None,
@@ -86,30 +93,56 @@ def wigner_reconstructions(scan, seed: int, bootstrap: int = RECONSTRUCTION_BOOT
     return {"pointwise": pointwise, "smoothed": smoothed, "phase_test": phase_test}
 
 
+@dataclass(frozen=True, eq=False)
+class UnderModel:
+    """Reconstructions of scans simulated from a model.
+
+    Unpacks as ``expected, spread = under_model`` (the mean and standard deviation over the
+    simulations, (n_outcomes, n_photons) each); ``draws`` (n_simulations, n_outcomes,
+    n_photons) holds every simulated scan's reconstruction (the cross-check's null
+    distribution is computed from them).
+    """
+
+    expected: object
+    spread: object
+    draws: object
+
+    def __iter__(self):
+        return iter((self.expected, self.spread))
+
+
 def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations: int = CROSS_CHECK_SIMULATIONS):
-    """Mean and spread of the reconstruction under a model: (n_outcomes, n_photons) each.
+    """Reconstructions of scans simulated under a model: an :class:`UnderModel` (unpacks into
+    the mean and spread over the simulations, (n_outcomes, n_photons) each).
 
     ``simulations`` scans are simulated from the model's outcome probabilities q[p, k] (same
-    probes and shots, seeded) and reconstructed with the data's regularisation strength, so
-    the smoothing bias and the constraint effects of the reconstruction act on the model
-    exactly as on the data.
+    probes and shots, seeded) and reconstructed by the data's estimator (``reconstruction.method``)
+    with the data's regularisation strength, so the smoothing bias and the constraint effects
+    of the reconstruction act on the model exactly as on the data.
     """
     import numpy as np
 
-    from povmfit.fitting.tomography.reconstruct import build_layout, solve_povm_batch, weighted_operator
+    from povmfit.fitting.tomography.reconstruct import (
+        RESAMPLE_ATOL, RESAMPLE_CYCLES, RESAMPLE_RTOL, build_layout, solve_likelihood_batch, solve_povm_batch, weighted_operator,
+    )
 
     shots = np.asarray(scan.shots)
-    operator = weighted_operator(build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons),
-                                 shots / shots.mean())
+    layout = build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons)
     q = np.clip(np.asarray(q, dtype=float), 0.0, None)
     q = q / q.sum(axis=1, keepdims=True)
     rng = np.random.default_rng([seed, 1])
-    simulated = np.stack([rng.multinomial(shots, q) for _ in range(simulations)]) / shots[:, None]
+    simulated = np.stack([rng.multinomial(shots, q) for _ in range(simulations)])
     # warm start at the data's reconstruction (a solution of the same problem for a nearby
-    # scan): the solutions do not depend on the start (checked against cold starts), only the
-    # time does
-    draws, _, _ = solve_povm_batch(operator, simulated, reconstruction.regularisation, reconstruction.theta, rtol=1e-11)
-    return draws.mean(axis=0), draws.std(axis=0, ddof=1)
+    # scan): the solutions do not depend on the start, only the time does
+    if getattr(reconstruction, "method", "least_squares") == "likelihood":
+        draws = solve_likelihood_batch(layout, simulated.astype(float), reconstruction.regularisation,
+                                       reconstruction.theta, rtol=RESAMPLE_RTOL, atol=RESAMPLE_ATOL,
+                                       max_cycles=RESAMPLE_CYCLES)[0]
+    else:
+        operator = weighted_operator(layout, shots / shots.mean())
+        draws, _, _ = solve_povm_batch(operator, simulated / shots[:, None], reconstruction.regularisation,
+                                       reconstruction.theta, rtol=1e-11)
+    return UnderModel(draws.mean(axis=0), draws.std(axis=0, ddof=1), draws)
 
 
 def _as_scan(scan):

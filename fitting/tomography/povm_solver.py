@@ -120,7 +120,8 @@ def build_layout(coherent, thermal, n_photons: int, tolerance: float = 1e-12, ba
 def _predict_numpy(theta, layout: ProblemLayout) -> np.ndarray:
     """sum_n F[p, n] theta[k, n] per row: (n_blocks, rows, n_outcomes)."""
     n_blocks = layout.blocks.shape[0]
-    padded = np.zeros((theta.shape[0], (n_blocks - 1) * layout.stride + layout.span))
+    # photon numbers beyond the last block (no probe reaches them) are padding here
+    padded = np.zeros((theta.shape[0], max((n_blocks - 1) * layout.stride + layout.span, layout.n_photons)))
     padded[:, : layout.n_photons] = theta
     starts = np.arange(n_blocks) * layout.stride
     spans = padded[:, starts[:, None] + np.arange(layout.span)[None, :]]  # (K, n_blocks, span)
@@ -134,7 +135,8 @@ def _adjoint_numpy(per_row, layout: ProblemLayout) -> np.ndarray:
     out = np.zeros((per_row.shape[-1], n_blocks - 1 + layout.span // stride, stride))
     for j in range(layout.span // stride):  # the span of block b covers strides b .. b+span/stride-1
         out[:, j : j + n_blocks] += per_span[:, :, j * stride : (j + 1) * stride]
-    return out.reshape(per_row.shape[-1], -1)[:, : layout.n_photons]
+    out = out.reshape(per_row.shape[-1], -1)[:, : layout.n_photons]
+    return np.pad(out, ((0, 0), (0, layout.n_photons - out.shape[1])))  # no probe beyond the last block
 
 
 # ----- solver pieces (pure JAX) ------------------------------------------------------------
@@ -176,7 +178,7 @@ def _predict(theta, blocks, stride):
     """Predicted probabilities per row for a batch: theta (B, K, N) -> (B, n_blocks, rows, K)."""
     n_blocks, _, span = blocks.shape
     padded_length = (n_blocks - 1) * stride + span
-    padded = jnp.pad(theta, ((0, 0), (0, 0), (0, padded_length - theta.shape[-1])))
+    padded = jnp.pad(theta, ((0, 0), (0, 0), (0, max(padded_length - theta.shape[-1], 0))))
     spans = padded[:, :, _span_indices(n_blocks, stride, span)]  # (B, K, n_blocks, span)
     return jnp.einsum("brs,zkbs->zbrk", blocks, spans)
 
@@ -187,8 +189,8 @@ def _adjoint(residual, blocks, stride, n_photons):
     per_span = jnp.einsum("brs,zbrk->zkbs", blocks, residual)
     padded_length = (n_blocks - 1) * stride + span
     out = jnp.zeros(residual.shape[:1] + residual.shape[-1:] + (padded_length,))
-    out = out.at[:, :, _span_indices(n_blocks, stride, span)].add(per_span)
-    return out[:, :, :n_photons]
+    out = out.at[:, :, _span_indices(n_blocks, stride, span)].add(per_span)[:, :, :n_photons]
+    return jnp.pad(out, ((0, 0), (0, 0), (0, n_photons - out.shape[-1])))  # no probe beyond the last block
 
 
 def _smoothness_gradient(theta):
@@ -416,7 +418,7 @@ def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisati
     hats = interpolation_matrix(n_coarse, n_photons)
     n_probes = int(layout.probe_index.max()) + 1
     coarse = np.zeros((n_probes, n_coarse))
-    padded_length = (layout.blocks.shape[0] - 1) * layout.stride + layout.span
+    padded_length = max((layout.blocks.shape[0] - 1) * layout.stride + layout.span, n_photons)
     hats_padded = np.zeros((n_coarse, padded_length))
     hats_padded[:, :n_photons] = hats
     for b in range(layout.blocks.shape[0]):

@@ -96,7 +96,8 @@ class ScanReconstruction:
         rec, pointwise, smoothed = self.reconstruction, self.pointwise, self.smoothed
         return json_safe({
             "scan": self.source, "sha256": self.sha256,
-            "povm": {"n_outcomes": rec.n_outcomes, "n_photons": rec.n_photons, "regularisation": rec.regularisation,
+            "povm": {"method": getattr(rec, "method", "least_squares"), "n_outcomes": rec.n_outcomes,
+                     "n_photons": rec.n_photons, "regularisation": rec.regularisation,
                      "cv_folds": rec.cv_folds, "converged": rec.converged,
                      "constrained_photons": list(self.constrained_photons)},
             "wigner_points": 0 if pointwise is None else int(pointwise.alpha.size),
@@ -122,7 +123,16 @@ class ScanReconstruction:
                    f"{format_number(float(grid.min()), 2)}..{format_number(float(grid.max()), 2)}{edge}")
         else:
             how = "fixed (one value given, no cross-validation)"
+        method = getattr(rec, "method", "least_squares")
+        lines.append(("estimator", "maximum likelihood on the counts (columns on the simplex), smoothness penalty g"
+                      if method == "likelihood" else "regularised least squares on the frequencies (Feito et al. 2009)"))
+        if method == "likelihood" and rec.cv_folds:
+            how = how.replace("cross-validation", "cross-validation on the held-out log-likelihood, largest g within "
+                                                  "one standard error of the best,")
         lines.append(("regularisation", f"g = {format_number(rec.regularisation, 3)}, {how}"))
+        if method == "likelihood" and rec.bootstrap > 1:
+            lines.append(("penalty bias", f"largest |bootstrap bias| / stderr on constrained photon numbers: "
+                                          f"{format_number(rec.largest_bias(), 3)}"))
         lines.append(("solver", f"{'converged' if rec.converged else 'DID NOT CONVERGE'} after {rec.iterations} iterations"))
         lines.append(("errors", f"parametric bootstrap, {rec.bootstrap} resamples (seed {rec.seed})"
                       if rec.bootstrap > 1 else "none (no bootstrap resamples)"))

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import signal
 from os import PathLike
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import contextmanager
@@ -21,7 +22,7 @@ import numpy as np
 
 import povmfit
 from povmfit.fitting.data.detector_file import DetectorRecord
-from povmfit.fitting.data.errors import ArgumentError
+from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
 from povmfit.fitting.data.metadata import metadata_for_scan
 from povmfit.fitting.data.scan import Scan
 from povmfit.fitting.display import format_uncertain, html_block, html_table, text_table
@@ -29,7 +30,7 @@ from povmfit.fitting.inference.compare import Comparison
 from povmfit.fitting.inference.fit import FitResult
 from povmfit.fitting.tomography.scan_reconstruction import ScanReconstruction
 from povmfit.fitting.inference.fit import check_identifiable
-from povmfit.fitting.workflow.arguments import as_model, as_models, as_scan
+from povmfit.fitting.data.arguments import as_model, as_models, as_scan
 
 __all__ = ["characterise", "Characterisation"]
 
@@ -51,6 +52,9 @@ class Characterisation:
             report's model curves need).
         model_wigner_alpha, model_wigner: displacements (complex amplitude alpha) and the
             fitted model's Wigner values there, (n_outcomes, n_points); None without points.
+        model_pointwise_wigner: the pointwise Wigner estimator applied to the fitted model's
+            exact probabilities, (n_outcomes, n_points) at ``model_free.pointwise.alpha``:
+            what the cross-check compares the data's pointwise values with; None without points.
         cross_check: JSON-able comparison of the fit with the reconstructions (see
             ``tomography.cross_check``), with its verdict.
         options: the analysis options (calibration_uncertainty, gate_duration_s, weighting,
@@ -68,6 +72,7 @@ class Characterisation:
     model_stderr: np.ndarray
     model_wigner_alpha: np.ndarray | None
     model_wigner: np.ndarray | None
+    model_pointwise_wigner: np.ndarray | None
     cross_check: dict
     options: dict
     metadata: dict
@@ -109,12 +114,14 @@ class Characterisation:
                         "input_sha256": self.scan.sha256, "options": self.options, "metadata": self.metadata},
         )
 
-    def write(self, out_dir, report: bool = True) -> dict:
+    def write(self, out_dir, report: bool = True, overwrite: bool = False) -> dict:
         """Write datasheet.json, detector.json, povm.csv, wigner.csv and (with ``report``)
-        report.html with plots/ into ``out_dir``, each file atomically; returns {name: Path}."""
+        report.html with plots/ into ``out_dir`` as one set (written beside it, then renamed
+        into place); returns {name: Path}. An ``out_dir`` that already holds files is refused
+        (OutputError) unless ``overwrite``, which replaces the whole folder."""
         from povmfit.fitting.outputs.files import write_characterisation
 
-        return write_characterisation(self, Path(out_dir), report=report)
+        return write_characterisation(self, Path(out_dir), report=report, overwrite=overwrite)
 
     def figures(self) -> dict:
         return self.datasheet()["figures"]
@@ -183,6 +190,9 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
     scan = as_scan(scan)
     options = _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed)
     # refuse what can be refused before any work starts
+    if scan.n_probes < 2:
+        raise NotIdentifiable(f"{scan.source}: the model-free cross-check needs two or more probes, the scan has "
+                              f"{scan.n_probes} (fit one model with povmfit.fit instead)")
     if not (isinstance(model, str) and model.strip().lower() == "auto"):
         check_identifiable(scan, as_model(model))
     as_models(candidates)
@@ -223,7 +233,8 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
         scan=scan, fit=result, comparison=comparison,
         model_free=ScanReconstruction.from_parts(scan, reconstruction, wigner),
         model_theta=parts["model_theta"], model_stderr=parts["model_stderr"],
-        model_wigner_alpha=parts["alpha"], model_wigner=parts["model_wigner"], cross_check=summary, options=options,
+        model_wigner_alpha=parts["alpha"], model_wigner=parts["model_wigner"],
+        model_pointwise_wigner=parts["model_pointwise"], cross_check=summary, options=options,
         metadata=conditions,
     )
 
@@ -279,9 +290,22 @@ def _single_row(result) -> list:
     }]
 
 
+WORKER_TIMEOUT_S = 6 * 3600.0
+"""Longest wait for one task of the worker process (its result or its start) before the job
+is stopped with a one-line WorkerError; a healthy worker answers well within it."""
+_START_TIMEOUT_S = 300.0
+
+
 @contextmanager
 def _executor(n_jobs: int):
-    """A one-worker process pool for n_jobs >= 2 (or -1), else None (work done here)."""
+    """A one-worker process pool for n_jobs >= 2 (or -1), else None (work done here).
+
+    The worker is a fresh interpreter (spawn) started isolated from the working folder: the
+    folder is not on its module path (``PYTHONSAFEPATH`` during its start-up, and the module
+    path it inherits has the working folder removed unless the running script lives there),
+    so a module file lying in the folder where povmfit runs is never imported by it. It
+    ignores SIGINT: Ctrl-C reaches this process, which stops the worker.
+    """
     if n_jobs == -1:
         n_jobs = os.cpu_count() or 1
     if not isinstance(n_jobs, int) or n_jobs < 1:
@@ -290,21 +314,105 @@ def _executor(n_jobs: int):
         yield None
         return
     # spawn: a fresh interpreter (JAX's threads do not survive fork)
-    pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+    pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=_worker_setup, initargs=(os.getpid(),))
     try:
+        _start_isolated(pool)
         yield pool
     except BaseException:
         # the worker's result is no longer wanted: stop it rather than wait for it
-        for process in list(getattr(pool, "_processes", {}).values()):
-            process.terminate()
-        pool.shutdown(wait=False, cancel_futures=True)
+        _stop_workers(pool)
         raise
     pool.shutdown(wait=True)
 
 
-def _submit(pool, function, *args) -> Future:
+def _worker_setup(parent_pid: int) -> None:
+    """In the worker: ignore SIGINT (the parent stops the worker) and end when the parent is
+    gone (killed), so no worker outlives its job."""
+    import threading
+    import time
+
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+    def watch():
+        while os.getppid() == parent_pid:
+            time.sleep(0.5)
+        os._exit(1)
+
+    threading.Thread(target=watch, daemon=True, name="povmfit-parent-watch").start()
+
+
+def _start_isolated(pool) -> None:
+    """Start the pool's worker now, with the working folder off its module path, and wait
+    (with a time limit) until it answers."""
+    import sys
+
+    main_file = getattr(sys.modules.get("__main__"), "__file__", None)
+    main_folder = os.path.realpath(os.path.dirname(main_file)) if main_file else None
+    here = os.path.realpath(os.getcwd())
+    unsafe = {entry for entry in sys.path
+              if os.path.realpath(entry or ".") == here and here != main_folder}
+    saved_path, saved_flag = list(sys.path), os.environ.get("PYTHONSAFEPATH")
+    os.environ["PYTHONSAFEPATH"] = "1"
+    sys.path[:] = [entry for entry in sys.path if entry not in unsafe]
+    try:
+        started = pool.submit(os.getpid)  # the pool starts its worker on the first task
+    finally:
+        sys.path[:] = saved_path
+        if saved_flag is None:
+            os.environ.pop("PYTHONSAFEPATH", None)
+        else:
+            os.environ["PYTHONSAFEPATH"] = saved_flag
+    _wait(started, _START_TIMEOUT_S, "start")
+
+
+def _stop_workers(pool) -> None:
+    processes = list((getattr(pool, "_processes", None) or {}).values())
+    for process in processes:
+        process.terminate()
+    for process in processes:
+        process.join(timeout=5)
+        if process.is_alive():
+            process.kill()
+            process.join(timeout=5)
+    # the worker is gone, so the pool's manager thread ends at once: wait for it, so that the
+    # pool's queues and locks are released before this process exits
+    pool.shutdown(wait=not any(process.is_alive() for process in processes), cancel_futures=True)
+
+
+class _Pending:
+    """The answer of a task submitted to the worker; ``result()`` waits at most ``timeout``
+    seconds and turns a dead or hung worker into a one-line WorkerError."""
+
+    def __init__(self, future: Future, timeout: float, task: str):
+        self._future, self._timeout, self._task = future, timeout, task
+
+    def result(self):
+        return _wait(self._future, self._timeout, self._task)
+
+
+def _wait(future: Future, timeout: float, task: str):
+    from concurrent.futures import TimeoutError as FutureTimeout
+    from concurrent.futures.process import BrokenProcessPool
+
+    from povmfit.fitting.data.errors import WorkerError
+
+    try:
+        return future.result(timeout=timeout)
+    except FutureTimeout:
+        raise WorkerError(f"the worker process gave no answer for {task} within {timeout:g} s; "
+                          "stopped (rerun with --jobs 1 to compute everything in one process)") from None
+    except BrokenProcessPool:
+        raise WorkerError(f"the worker process ended unexpectedly during {task} (killed or out of memory?); "
+                          "rerun with --jobs 1 to compute everything in one process") from None
+
+
+def _submit(pool, function, *args, timeout: float | None = None):
+    """Run ``function(*args)`` in the worker (or here without a pool); the returned object's
+    ``result()`` waits at most ``timeout`` seconds (default :data:`WORKER_TIMEOUT_S`)."""
     if pool is not None:
-        return pool.submit(function, *args)
+        return _Pending(pool.submit(function, *args), WORKER_TIMEOUT_S if timeout is None else timeout,
+                        getattr(function, "__name__", "a task"))
     done: Future = Future()
     done.set_result(function(*args))
     return done

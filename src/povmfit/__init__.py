@@ -50,10 +50,13 @@ _PUBLIC = {
     "reconstruct": "povmfit.fitting.workflow.api",
     "characterise": "povmfit.fitting.workflow.characterise",
     "Characterisation": "povmfit.fitting.workflow.characterise",
+    "characterise_many": "povmfit.fitting.workflow.batch",
+    "BatchResult": "povmfit.fitting.workflow.batch",
     "FitResult": "povmfit.fitting.inference.fit",
     "Comparison": "povmfit.fitting.inference.compare",
     "Emulator": "povmfit.fitting.emulation.emulator",
     "simulate_scan": "povmfit.fitting.emulation.simulate",
+    "plan": "povmfit.fitting.workflow.plan", "MeasurementPlan": "povmfit.fitting.workflow.plan",
     "load_detector": "povmfit.fitting.data.detector_file",
     "DetectorRecord": "povmfit.fitting.data.detector_file",
     "PovmfitError": "povmfit.fitting.data.errors",
@@ -63,6 +66,12 @@ _PUBLIC = {
     "StateError": "povmfit.fitting.data.errors",
     "NotIdentifiable": "povmfit.fitting.data.errors",
     "FitNotConverged": "povmfit.fitting.inference.fit",
+    "tally_pulse_heights": "povmfit.fitting.workflow.tally",
+    "tally_click_log": "povmfit.fitting.workflow.tally",
+    "PulseHeightTally": "povmfit.fitting.workflow.tally",
+    "ClickLogTally": "povmfit.fitting.workflow.tally",
+    "load_readout": "povmfit.fitting.tally.readout",
+    "apply_readout": "povmfit.fitting.tally.readout",
 }
 __all__ = sorted(_PUBLIC)
 
