@@ -293,7 +293,6 @@ def _single_row(result) -> list:
 WORKER_TIMEOUT_S = 6 * 3600.0
 """Longest wait for one task of the worker process (its result or its start) before the job
 is stopped with a one-line WorkerError; a healthy worker answers well within it."""
-_START_TIMEOUT_S = 300.0
 
 
 @contextmanager
@@ -343,8 +342,10 @@ def _worker_setup(parent_pid: int) -> None:
 
 
 def _start_isolated(pool) -> None:
-    """Start the pool's worker now, with the working folder off its module path, and wait
-    (with a time limit) until it answers."""
+    """Start the pool's worker now, with the working folder off its module path. The worker's
+    interpreter and its module path are fixed when ``submit`` returns (spawn hands them over
+    as it starts the process), so this process does not wait for the worker to answer; the
+    first task's answer carries the start's time limit."""
     import sys
 
     main_file = getattr(sys.modules.get("__main__"), "__file__", None)
@@ -363,7 +364,7 @@ def _start_isolated(pool) -> None:
             os.environ.pop("PYTHONSAFEPATH", None)
         else:
             os.environ["PYTHONSAFEPATH"] = saved_flag
-    _wait(started, _START_TIMEOUT_S, "start")
+    return started
 
 
 def _stop_workers(pool) -> None:
