@@ -184,7 +184,10 @@ def test_ctrl_c_during_fit_prints_one_line_exits_130_and_leaves_nothing(tmp_path
     work = _hostile_folder(tmp_path / "work")
     scan = _scan(tmp_path)
     tag = uuid.uuid4().hex
-    run = subprocess.Popen([POVMFIT, "fit", str(scan), *FIT, "--jobs", "2", "--out", str(work / "out")],
+    # a long bootstrap keeps the job busy well after its worker has started (the worker starts
+    # without the main process waiting for it, so a tiny job could finish before the signal)
+    run = subprocess.Popen([POVMFIT, "fit", str(scan), *FIT, "--jobs", "2", "--bootstrap", "20000",
+                            "--out", str(work / "out")],
                            cwd=work, env=_env(tmp_path, tag), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     _wait_for_worker(tag, run)
     run.send_signal(signal.SIGINT)

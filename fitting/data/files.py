@@ -17,6 +17,7 @@ import json
 import math
 import os
 import shutil
+import stat
 import tempfile
 import threading
 from pathlib import Path
@@ -127,9 +128,9 @@ def check_output_folder(out_dir, overwrite: bool = False) -> Path:
     or that this user cannot write to. Nothing is created. Returns the path.
     """
     out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
+    if _exists_as_non_folder(out_dir):
         raise OutputError(f"--out {out_dir}: exists and is not a folder (give a folder for the results)")
-    if out_dir.is_dir() and any(out_dir.iterdir()) and not overwrite:
+    if not overwrite and _holds_files(out_dir):
         raise OutputError(f"--out {out_dir}: the folder already holds files (other results?); give --overwrite "
                           "to replace the whole folder, or choose another")
     parent = _existing_parent(out_dir)
@@ -138,6 +139,21 @@ def check_output_folder(out_dir, overwrite: bool = False) -> Path:
     if not os.access(parent, os.W_OK | os.X_OK):
         raise OutputError(f"--out {out_dir}: cannot write in {parent} (permission denied)")
     return out_dir
+
+
+def _holds_files(folder: Path) -> bool:
+    try:
+        return any(folder.iterdir())
+    except (FileNotFoundError, NotADirectoryError):
+        return False
+
+
+def _exists_as_non_folder(path: Path) -> bool:
+    """One look at ``path`` (another run may move a folder away at any moment)."""
+    try:
+        return not stat.S_ISDIR(os.stat(path).st_mode)
+    except (FileNotFoundError, NotADirectoryError):
+        return False
 
 
 def _existing_parent(path: Path) -> Path:
@@ -198,9 +214,7 @@ def _commit(staging: Path, out_dir: Path, overwrite: bool) -> None:
         except FileNotFoundError:
             continue
         except OSError:
-            if not out_dir.exists():
-                continue  # another run moved its set away in between: try again
-            if not out_dir.is_dir():
+            if _exists_as_non_folder(out_dir):
                 raise OutputError(f"--out {out_dir}: exists and is not a folder") from None
             try:
                 occupied = any(out_dir.iterdir())
