@@ -1,5 +1,6 @@
 """Manifests of ``povmfit batch``: what is accepted, and bad manifests refused with one line
-(exit code 2, nothing written, no cluster started). Plumbing: no numbers checked."""
+(exit code 2, nothing written, no cluster started). Plumbing: no numbers checked.
+Source of every expected value: the manifest contract in the README (common practice, no source)."""
 from __future__ import annotations
 
 import pandas as pd

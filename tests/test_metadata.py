@@ -1,5 +1,6 @@
 """Conditions of a measurement: read from a sidecar file or given, checked, carried into the
-datasheet and the detector file (plumbing; no numbers from outside)."""
+datasheet and the detector file (plumbing; no numbers from outside).
+Source of every expected value: the metadata contract in the README (common practice, no source)."""
 from __future__ import annotations
 
 import json

@@ -3,12 +3,11 @@ shots, and write them as ``plan.csv`` (a thin layer over :func:`povmfit.plan`)."
 from __future__ import annotations
 
 import argparse
-import json
 import math
 from pathlib import Path
 
 from povmfit.fitting.data.errors import ArgumentError, PovmfitError
-from povmfit.fitting.data.files import json_safe
+from povmfit.fitting.cli.printing import print_result
 
 __all__ = ["register", "run"]
 
@@ -115,13 +114,5 @@ def run(args) -> int:
     files = {"plan": result.write_csv(args.out)}
     if args.report is not None:
         files["report"] = result.write_report(args.report or Path(args.out).with_suffix(".html"))
-    if args.json:
-        summary = {key: value for key, value in result.to_dict().items() if key not in ("curve",)}
-        summary["outputs"] = {k: str(v) for k, v in files.items()}
-        print(json.dumps(json_safe(summary), indent=2))
-    elif not args.quiet:
-        print(result.summary())
-        print()
-        for name, path in files.items():
-            print(f"wrote {name:<8} {path}")
+    print_result(result, files, args, leave_out=("curve",))
     return 0

@@ -3,11 +3,10 @@
 from __future__ import annotations
 
 import argparse
-import json
 from pathlib import Path
 
 from povmfit.fitting.data.errors import ArgumentError, PovmfitError
-from povmfit.fitting.data.files import json_safe
+from povmfit.fitting.cli.printing import print_result
 
 __all__ = ["register", "run"]
 
@@ -101,13 +100,5 @@ def run(args) -> int:
         files = result.write(args.out, readout=args.readout_out, report=args.report)
     else:
         files = result.write(args.out)
-    if args.json:
-        summary = result.to_dict()
-        summary["outputs"] = {k: str(v) for k, v in files.items()}
-        print(json.dumps(json_safe(summary), indent=2))
-    elif not args.quiet:
-        print(result.summary())
-        print()
-        for name, path in files.items():
-            print(f"wrote {name:<9} {path}")
+    print_result(result, files, args)
     return 0

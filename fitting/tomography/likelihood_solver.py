@@ -42,7 +42,7 @@ from povmfit.fitting.tomography.povm_solver import (
     _predict,
     _adjoint,
     _predict_numpy,
-    interpolation_matrix,
+    coarse_problem,
 )
 
 __all__ = [
@@ -310,21 +310,8 @@ def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float
     (hat functions are convex weights, so the columns stay in the simplex; the penalty of a
     piecewise-linear theta with node spacing h is the coarse one divided by h), solved
     densely and interpolated back. Shape (n_outcomes, n_photons)."""
-    n_photons = layout.n_photons
-    n_coarse = int(min(n_coarse, n_photons))
-    hats = interpolation_matrix(n_coarse, n_photons)
     counts = np.asarray(counts, dtype=float)
-    n_probes = counts.shape[0]
-    coarse = np.zeros((n_probes, n_coarse))
-    padded_length = max((layout.blocks.shape[0] - 1) * layout.stride + layout.span, n_photons)
-    hats_padded = np.zeros((n_coarse, padded_length))
-    hats_padded[:, :n_photons] = hats
-    for b in range(layout.blocks.shape[0]):
-        rows = layout.probe_index[b] >= 0
-        window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
-        coarse[layout.probe_index[b, rows]] = layout.blocks[b, rows] @ window.T
-    coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
-    spacing = (n_photons - 1.0) / max(n_coarse - 1.0, 1.0)
+    coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, counts.shape[0])
     theta, _, _, _ = solve_likelihood(coarse_layout, counts, regularisation / spacing, rtol=rtol, atol=atol,
                                       max_cycles=max_cycles)
     theta = theta + 1e-9  # no exact zeros (EM keeps a zero entry at zero)

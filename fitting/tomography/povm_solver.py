@@ -408,15 +408,13 @@ def interpolation_matrix(n_coarse: int, n_photons: int) -> np.ndarray:
     return np.clip(1.0 - np.abs(np.arange(n_photons)[None, :] - nodes[:, None]) / spacing, 0.0, None)
 
 
-def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisation: float,
-                 n_coarse: int = 400, rtol: float = 1e-10) -> np.ndarray:
-    """Warm start for large problems: solve with theta piecewise linear between ``n_coarse``
-    nodes (the smoothness term of a piecewise-linear theta with node spacing h is the coarse
-    one divided by h) and interpolate back. Shape (n_outcomes, n_photons)."""
+def coarse_problem(layout: ProblemLayout, n_coarse: int, n_probes: int):
+    """The problem restricted to theta piecewise linear between ``n_coarse`` nodes: (dense
+    layout of the probes against the hat functions, hats (n_coarse, n_photons), node spacing h).
+    The smoothness term of such a theta is the coarse one divided by h."""
     n_photons = layout.n_photons
     n_coarse = int(min(n_coarse, n_photons))
     hats = interpolation_matrix(n_coarse, n_photons)
-    n_probes = int(layout.probe_index.max()) + 1
     coarse = np.zeros((n_probes, n_coarse))
     padded_length = max((layout.blocks.shape[0] - 1) * layout.stride + layout.span, n_photons)
     hats_padded = np.zeros((n_coarse, padded_length))
@@ -426,7 +424,15 @@ def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisati
         window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
         coarse[layout.probe_index[b, rows]] = layout.blocks[b, rows] @ window.T
     coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
-    spacing = (n_photons - 1.0) / (n_coarse - 1.0)
+    return coarse_layout, hats, (n_photons - 1.0) / max(n_coarse - 1.0, 1.0)
+
+
+def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisation: float,
+                 n_coarse: int = 400, rtol: float = 1e-10) -> np.ndarray:
+    """Warm start for large problems: solve with theta piecewise linear between ``n_coarse``
+    nodes (the smoothness term of a piecewise-linear theta with node spacing h is the coarse
+    one divided by h) and interpolate back. Shape (n_outcomes, n_photons)."""
+    coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, int(layout.probe_index.max()) + 1)
     theta, _, _ = solve_povm(weighted_operator(coarse_layout, probe_weights), frequencies,
                              regularisation / spacing, rtol=rtol)
     return theta @ hats
