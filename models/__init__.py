@@ -16,7 +16,16 @@ from ._emulate import (
     split_array_patterns,
     uniform_subset_patterns,
 )
-from ._families import FAMILIES, FEATURES, DetectorModel, parse_model_spec
+from ._families import (
+    FAMILIES,
+    FEATURES,
+    FIXED_READOUT,
+    READOUT_COLUMN_TOLERANCE,
+    DetectorModel,
+    check_readout_matrix,
+    fixed_readout_columns,
+    parse_model_spec,
+)
 from ._features import FEATURE_TABLE, PARAMETERS, dark_parameter_names, null_value, ranked_features
 from ._povm import POVM
 from ._probes import (
@@ -45,7 +54,8 @@ from ._wigner import fock_wigner_table, fock_wigner_table_numpy, povm_wigner, sa
 
 __all__ = [
     "FAMILIES", "FEATURES", "FEATURE_TABLE", "PARAMETERS", "dark_parameter_names", "null_value", "ranked_features",
-    "DetectorModel", "parse_model_spec", "POVM",
+    "DetectorModel", "parse_model_spec", "FIXED_READOUT", "READOUT_COLUMN_TOLERANCE", "check_readout_matrix",
+    "fixed_readout_columns", "POVM",
     "choose_cutoff", "coherent_distribution", "displaced_thermal_distribution",
     "fock_distribution", "probe_distributions", "probe_distributions_numpy", "squeezed_vacuum_distribution", "tail_mass",
     "thermal_distribution", "borel_crosstalk_matrix", "click_dark_matrix", "loss_matrix",

@@ -97,7 +97,12 @@ def test_characterisation_is_frozen_and_its_views_agree(characterised, tmp_path)
 
 def test_two_processes_give_the_same_characterisation(scan_file, characterised):
     # Source: the one-process computation with the same functions and seeds (common practice).
-    two = povmfit.characterise(scan_file, "array:3+dark", gate_duration=1e-7, n_jobs=2)
+    reports = []
+    two = povmfit.characterise(scan_file, "array:3+dark", gate_duration=1e-7, n_jobs=2,
+                               progress=lambda task, done, total: reports.append((task, done, total)))
+    # the worker's progress is relayed, its tasks marked as the worker's
+    worker = [r for r in reports if r[0].endswith("(worker)")]
+    assert worker and worker[-1][1] == worker[-1][2]
     assert two.datasheet()["figures"] == characterised.datasheet()["figures"]
     np.testing.assert_array_equal(two.model_free.reconstruction.theta, characterised.model_free.reconstruction.theta)
     assert two.cross_check["povm"]["chi_square"] == characterised.cross_check["povm"]["chi_square"]
@@ -114,5 +119,5 @@ def test_progress_reaches_the_callback(scan_file):
     povmfit.fit(scan_file, "auto", candidates="array:3,array:3+dark", bootstrap=5,
                 progress=lambda task, done, total: calls.append((task, done, total)))
     tasks = {task for task, _, _ in calls}
-    assert {"model ranking", "bootstrap"} <= tasks
+    assert {"compiling models", "model ranking", "bootstrap"} <= tasks
     assert all(0 <= done <= total for _, done, total in calls)

@@ -84,6 +84,8 @@ def cluster():
 def sweep(cluster, tmp_path_factory):
     folder = tmp_path_factory.mktemp("sweep")
     paths = write_bias_sweep(folder)
+    # a sidecar on the first scan: its well-known keys become columns of the figures table
+    paths[0].with_name(paths[0].name + ".meta.json").write_text(json.dumps({"device": "WN-8", "temperature_k": 2.4}))
     manifest = write_manifest(folder, paths)
     out = folder / "results"
     result = povmfit.characterise_many(manifest, out, model=MODEL, dark_limit=DARK_LIMIT, scheduler=cluster)
@@ -142,6 +144,8 @@ def test_figures_files_and_report(sweep):
                        "vacuum_click_probability_value", "vacuum_click_probability_ci95_hi"):
             assert column in frame.columns, column
         assert len(frame) == len(BIAS)
+        assert frame.loc[0, "device"] == "WN-8" and frame.loc[0, "temperature_k"] == 2.4
+        assert frame["temperature_k"][1:].isna().all()  # the other scans have no sidecar
     assert parquet["efficiency_value"].tolist() == pytest.approx(csv["efficiency_value"].tolist(), rel=1e-12)
     page = (out / "batch_report.html").read_text()
     assert page.count("<svg") >= 1 and "bias_current_ua" in page and "No scan was refused" in page
@@ -153,10 +157,12 @@ def test_figures_files_and_report(sweep):
 
 def test_batch_gives_what_the_fit_command_gives(sweep, tmp_path):
     """Same scan, same options: the batch's folder equals `povmfit fit --out` byte for byte,
-    except the creation time in the datasheet."""
+    except the creation time in the datasheet. The manifest's bias_current_ua is a well-known
+    metadata key, which the batch hands to the scan's job as `--meta` does."""
     result, out, paths = sweep
     row = result.rows[3]
-    assert main(["fit", str(paths[3]), "--model", MODEL, "--jobs", "1", "--quiet", "--out", str(tmp_path)]) == 0
+    assert main(["fit", str(paths[3]), "--model", MODEL, "--jobs", "1", "--quiet", "--out", str(tmp_path),
+                 "--meta", f"bias_current_ua={BIAS[3]}"]) == 0
     batch_folder = out / row["output"]
     sheets = []
     for folder in (batch_folder, tmp_path):

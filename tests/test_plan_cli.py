@@ -61,7 +61,7 @@ def test_plan_json_summary(tmp_path):
 
 def test_simulate_takes_the_plans_shots(detector, tmp_path):
     plan_file = tmp_path / "plan.csv"
-    assert _run(["plan", detector, "--target", "efficiency:0.01", "--cross-check", "--out", plan_file])[0] == 0
+    assert _run(["plan", detector, "--target", "efficiency:0.01", "--cross-check", "-o", plan_file])[0] == 0
     rows = list(csv.DictReader(plan_file.open()))
     scan_file = tmp_path / "sim.csv"
     code, _, err = _run(["simulate", detector, "--probes", plan_file, "--seed", 4, "-o", scan_file])

@@ -39,7 +39,7 @@ def test_pulse_heights_cli_writes_scan_readout_and_report(tmp_path, capsys):
 def test_click_log_cli(tmp_path, capsys):
     (tmp_path / "a.txt").write_text("101\n000\n111\n100\n")
     (tmp_path / "probes.csv").write_text("probe,coherent_photons,thermal_photons,log\na,1.5,0,a.txt\n")
-    assert main(["tally", "click-log", str(tmp_path / "probes.csv"), "--out", str(tmp_path / "o" / "s.csv")]) == 0
+    assert main(["tally", "click-log", str(tmp_path / "probes.csv"), "-o", str(tmp_path / "o" / "s.csv")]) == 0
     assert "3 channels" in capsys.readouterr().out
     # by hand: patterns 101, 000, 111, 100 have 2, 0, 3, 1 clicks
     assert povmfit.load_scan(tmp_path / "o" / "s.csv").counts.tolist() == [[1, 1, 1, 1]]

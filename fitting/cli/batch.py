@@ -49,7 +49,8 @@ def register(subparsers):
     parser.add_argument("--workers", type=int, default=None, metavar="N",
                         help="worker processes for local/processes (default: one per available core)")
     parser.add_argument("--seed", type=int, default=0, help="seed for cross-validation, bootstrap and sweep draws")
-    parser.add_argument("--out", default=None, help="output folder (default: MANIFEST_STEM.povmfit/)")
+    parser.add_argument("-o", "--out", default=None, metavar="FOLDER",
+                        help="output folder (default: MANIFEST_STEM.povmfit/)")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace the results of an earlier batch in --out (refused otherwise)")
     parser.add_argument("--no-report", action="store_true", help="skip the HTML reports and plots")

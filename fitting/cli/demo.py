@@ -22,12 +22,22 @@ def register(subparsers):
         epilog=EPILOG,
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
-    parser.add_argument("--out", default="povmfit-demo", help="output folder (default: povmfit-demo); refused "
-                        "when it already holds files, unless --overwrite")
+    parser.add_argument("-o", "--out", default="povmfit-demo", metavar="FOLDER",
+                        help="output folder (default: povmfit-demo); refused when it already holds files, "
+                        "unless --overwrite")
     parser.add_argument("--overwrite", action="store_true", help="replace the whole --out folder")
     parser.add_argument("--quiet", action="store_true", help="print nothing but errors")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
     return parser
+
+
+def fit_defaults() -> argparse.Namespace:
+    """The options of ``povmfit fit`` at their defaults, so that the demo runs the same job."""
+    from povmfit.fitting.cli.fit import add_fit_arguments
+
+    parser = argparse.ArgumentParser(add_help=False)
+    add_fit_arguments(parser, scan_required=False)
+    return parser.parse_args([])
 
 
 def run(args) -> int:
@@ -40,10 +50,9 @@ def run(args) -> int:
     check_output_folder(out_dir, args.overwrite)  # before any work
     scan_copy = out_dir / "demo_scan.csv"  # written with the other outputs, as one set
     scan = dataclasses.replace(load_scan(demo_scan_path()), source=str(scan_copy))
-    fit_args = argparse.Namespace(
-        model="auto", candidates=None, calibration_uncertainty=DEMO_CALIBRATION, gate_duration=DEMO_GATE_S,
-        weighting="deviance", bootstrap=0, seed=0, jobs=2, quiet=args.quiet, json=args.json, metadata=DEMO_METADATA,
-    )
+    fit_args = fit_defaults()  # the options of `povmfit fit` at their defaults (seed, bootstrap, jobs, ...)
+    fit_args.__dict__.update(calibration_uncertainty=DEMO_CALIBRATION, gate_duration=DEMO_GATE_S, quiet=args.quiet,
+                             json=args.json, metadata=DEMO_METADATA)
     talk = not args.quiet and not args.json
     if talk:
         print(f"povmfit demo: simulated scan of an invented 8-bin click detector -> {scan_copy}")

@@ -13,6 +13,7 @@ EPILOG = """examples:
   povmfit fit scan.csv                                   # choose the model automatically
   povmfit fit scan.csv --model array:8+dark+crosstalk --calibration-uncertainty 0.05
   povmfit fit scan.parquet --gate-duration 1e-6 --out results/
+  povmfit fit scan.csv --readout readout.json             # a fixed readout from a pulse-height tally
 
 model spec: FAMILY[:SIZE][+FEATURE...], families threshold, pnr:K, array:N;
 features dark, crosstalk, readout, unequal_split, saturation:K (see the README)."""
@@ -42,6 +43,9 @@ def add_fit_arguments(parser, scan_required: bool = True):
                         help="relative 1-sigma uncertainty of the probe photon numbers (e.g. 0.05)")
     parser.add_argument("--gate-duration", type=float, default=None, metavar="SECONDS",
                         help="gate or counting-window duration, to turn dark probabilities into rates")
+    parser.add_argument("--readout", default=None, metavar="FILE",
+                        help="readout.json of a pulse-height tally: its misassignment matrix is put after the "
+                        "model as a fixed readout stage (models with the readout feature are ranked beside it)")
     parser.add_argument("--weighting", choices=("deviance", "pearson"), default="deviance",
                         help="residual weighting (deviance = maximum likelihood)")
     parser.add_argument("--bootstrap", type=int, default=0, metavar="N", help="parametric bootstrap resamples")
@@ -52,7 +56,7 @@ def add_fit_arguments(parser, scan_required: bool = True):
                         "repetition_rate_hz, operator, notes; also read from SCAN.meta.json beside the scan)")
     parser.add_argument("--jobs", type=int, default=2, metavar="N",
                         help="processes (default 2: the model-free POVM beside the model ranking; 1: one process)")
-    parser.add_argument("--out", default=None, help="output folder (default: SCAN_STEM.povmfit/); refused when it "
+    parser.add_argument("-o", "--out", default=None, help="output folder (default: SCAN_STEM.povmfit/); refused when it "
                         "already holds files, unless --overwrite")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace the whole --out folder if it already holds results")
@@ -105,7 +109,7 @@ def characterise_for_cli(scan, args):
         result = characterise(
             scan, args.model, candidates=args.candidates, calibration_uncertainty=args.calibration_uncertainty,
             gate_duration=args.gate_duration, weighting=args.weighting, bootstrap=args.bootstrap, seed=args.seed,
-            n_jobs=args.jobs, metadata=metadata, progress=progress,
+            n_jobs=args.jobs, metadata=metadata, readout=getattr(args, "readout", None), progress=progress,
         )
     for warning in caught:
         if issubclass(warning.category, UserWarning) and warning.category.__module__.startswith("povmfit"):

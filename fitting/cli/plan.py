@@ -55,7 +55,7 @@ def register(subparsers) -> argparse.ArgumentParser:
                         help="gate or window duration (for dark count rate targets)")
     parser.add_argument("--cross-check", action="store_true",
                         help="add the cheapest probes that allow the model-free pointwise Wigner cross-check")
-    parser.add_argument("--out", default="plan.csv", metavar="FILE", help="plan file to write (default plan.csv)")
+    parser.add_argument("-o", "--out", default="plan.csv", metavar="FILE", help="plan file to write (default plan.csv)")
     parser.add_argument("--report", nargs="?", const="", default=None, metavar="FILE",
                         help="also write an HTML report with the planned-vs-uniform plot (default: beside --out)")
     parser.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")

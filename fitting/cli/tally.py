@@ -38,7 +38,7 @@ def register(subparsers) -> argparse.ArgumentParser:
         "readout.json (the misassignment matrix and the peak parameters).",
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     heights.add_argument("probes", metavar="PROBES", help="the PROBES file (CSV)")
-    heights.add_argument("--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
+    heights.add_argument("-o", "--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
     heights.add_argument("--max-photons", type=int, default=None, metavar="K",
                          help="largest outcome, meaning K or more (default: from the probes and the separable peaks)")
     heights.add_argument("--quadratic", action="store_true", help="fit a small quadratic term in the peak positions")
@@ -52,7 +52,7 @@ def register(subparsers) -> argparse.ArgumentParser:
         "layout (SCAN_STEM.patterns.csv) and per-channel click probabilities (SCAN_STEM.channels.csv).",
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
     click.add_argument("probes", metavar="PROBES", help="the PROBES file (CSV)")
-    click.add_argument("--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
+    click.add_argument("-o", "--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
     click.add_argument("--channels", type=int, default=None, metavar="N",
                        help="number of channels (default: the pattern width or the highest channel that fired)")
     click.add_argument("--log-format", default="auto", choices=("auto", "bitmask", "pattern"),

@@ -17,7 +17,9 @@ the provenance. Layout (keys in this order)::
     }
 
 ``model`` carries ``pixels`` for ``array`` and ``threshold`` (1) and ``max_outcome`` for
-``pnr``. Loading only parses JSON (no pickle, no code) and refuses, with one-line
+``pnr``; a model with a fixed readout (spec ``...+fixed_readout``) also carries
+``fixed_readout``, its matrix ``M[k][m] = P(outcome k | m registered)`` as a list of rows
+(checked on load like a ``readout.json``: entries in [0, 1], columns summing to 1). Loading only parses JSON (no pickle, no code) and refuses, with one-line
 :class:`DetectorFileError` messages, anything it cannot vouch for: another schema (a newer one
 included), missing or unknown fields, a model block that disagrees with its spec,
 parameters outside their bounds, a covariance that is not a finite symmetric positive
@@ -35,7 +37,7 @@ from pathlib import Path
 
 import numpy as np
 
-from povmfit.models import DetectorModel, parse_model_spec
+from povmfit.models import DetectorModel, check_readout_matrix, parse_model_spec
 
 from povmfit.fitting.data.files import atomic_write_text
 from povmfit.fitting.data.errors import DetectorFileError
@@ -95,6 +97,8 @@ class DetectorRecord:
         else:
             block["pixels"] = model.size
         block["features"] = list(model.feature_list)
+        if model.fixed_readout is not None:
+            block["fixed_readout"] = [list(row) for row in model.fixed_readout]
         names = list(model.parameter_names)
         bounds = self.parameter_bounds()
         covariance = np.asarray(self.covariance, dtype=float)
@@ -192,18 +196,35 @@ def _is_number(value) -> bool:
 def _check_model_block(block, where: str) -> DetectorModel:
     if not isinstance(block, dict) or not isinstance(block.get("spec"), str):
         raise DetectorFileError(f"{where}: field 'model' must be an object with a 'spec' string")
+    matrix = _check_fixed_readout(block.get("fixed_readout"), where)
     try:
-        model = parse_model_spec(block["spec"])
+        model = parse_model_spec(block["spec"], fixed_readout=matrix)
     except ValueError as error:
         raise DetectorFileError(f"{where}: field 'model.spec': {error}") from None
     size_key = "max_outcome" if model.family == "pnr" else "pixels"
-    expected = {"spec": block["spec"], "family": model.family, size_key: model.size, "features": model.feature_list}
+    expected = {"spec": model.spec, "family": model.family, size_key: model.size, "features": model.feature_list}
+    if matrix is not None:
+        expected["fixed_readout"] = block["fixed_readout"]
     if set(block) != set(expected):
         raise DetectorFileError(f"{where}: field 'model' must have exactly the keys {', '.join(expected)} for a {model.family} detector")
     for key, value in expected.items():
         if block[key] != value or (key == size_key and not isinstance(block[key], int)):
             raise DetectorFileError(f"{where}: field 'model.{key}' is {block[key]!r} but spec {block['spec']!r} means {value!r}")
     return model
+
+
+def _check_fixed_readout(rows, where: str):
+    """The ``model.fixed_readout`` matrix as an array (None when absent); DetectorFileError
+    when it is not a list of rows of numbers forming a readout matrix."""
+    if rows is None:
+        return None
+    if not (isinstance(rows, list) and rows and all(isinstance(r, list) for r in rows)
+            and all(_is_number(v) for r in rows for v in r) and len({len(r) for r in rows}) == 1):
+        raise DetectorFileError(f"{where}: field 'model.fixed_readout' must be a list of equally long rows of numbers")
+    try:
+        return check_readout_matrix(rows)
+    except ValueError as error:
+        raise DetectorFileError(f"{where}: field 'model.fixed_readout': {error}") from None
 
 
 def _check_named_floats(values, names, field_name: str, where: str) -> dict:

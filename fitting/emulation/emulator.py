@@ -35,6 +35,11 @@ Ensembles: the detector in one experiment is fixed but not exactly known. So
 given seed) and use it for every shot of the call. Repeated runs with different seeds then
 scatter by shot noise plus the detector's uncertainty; :meth:`sample_ensemble` gives one run
 per member at once.
+
+Seeds: every method that draws (``ensemble``, ``sample``, ``sample_ensemble``, ``respond``,
+``patterns``) takes ``seed``, anything :func:`numpy.random.default_rng` accepts; the same seed
+gives the same draws, and ``seed=None`` draws fresh randomness from the operating system (the
+command line never does: its ``--seed`` defaults to 0).
 """
 from __future__ import annotations
 
@@ -48,6 +53,7 @@ import numpy as np
 
 from povmfit.models import (
     DetectorModel,
+    fixed_readout_columns,
     readout_matrix,
     response_table,
     sample_counts,
@@ -87,7 +93,8 @@ def _batched_povm(model: DetectorModel, n_photons: int):
 
 
 def _pixel_level_model(model: DetectorModel) -> DetectorModel:
-    """The same array without readout and saturation: outcome = number of pixels fired."""
+    """The same array without readout, fixed readout and saturation: outcome = number of pixels
+    fired."""
     features = tuple(f for f in model.features if f != "readout")
     return DetectorModel(model.family, model.size, features, None)
 
@@ -260,7 +267,9 @@ class Emulator:
 
     def _reported_outcomes(self, fired: np.ndarray, values: dict, rng) -> np.ndarray:
         pixels = self.model.size
-        if "readout" in self.model.features:
+        if self.model.fixed_readout is not None:
+            matrix = fixed_readout_columns(self.model.fixed_readout, pixels + 1)
+        elif "readout" in self.model.features:
             matrix = np.asarray(readout_matrix(values["readout_width"], pixels + 1, self.n_outcomes))
         elif self.model.saturation is not None:
             matrix = np.asarray(saturation_matrix(pixels + 1, self.model.saturation))

@@ -123,7 +123,8 @@ def simulate_counts(emulator, coherent, thermal, shots, seed=None) -> np.ndarray
     """Counts (n_probes, n_outcomes): Multinomial(shots_p, q_p) for every probe p; ``shots``
     is one whole number for every probe or an array (n_probes,) of them.
 
-    q_p uses one detector (one ensemble member, chosen with ``seed``) for all probes.
+    q_p uses one detector (one ensemble member, chosen with ``seed``) for all probes;
+    ``seed=None`` draws fresh randomness from the operating system.
     """
     from povmfit.models import choose_cutoff, probe_distributions, sample_counts
 
@@ -147,7 +148,8 @@ def simulate_scan(detector, probes, shots=None, seed=None, povm_source: str = "a
             optional ``shots`` column, as in a ``plan.csv``), or a pair of arrays
             (coherent_photons, thermal_photons), mean photons per shot.
         shots: shots per probe (>= 1); None when the probe file gives them (giving both is
-            refused). seed: random seed (None: fresh randomness).
+            refused). seed: random seed; the same seed gives the same counts, None draws
+            fresh randomness from the operating system (``povmfit simulate`` defaults to 0).
     """
     from povmfit.fitting.data.scan import scan_from_arrays
     from povmfit.fitting.emulation.emulator import Emulator

@@ -20,6 +20,12 @@ Criteria (each reported in the table):
   opinion where the criteria are close.
 The chosen model is the adequate candidate with the lowest BIC (the lowest BIC overall when
 none is adequate, and the verdict says so).
+
+A fixed readout matrix M (``fixed_readout=``, from a pulse-height tally) is put after every
+candidate without the ``readout`` feature (specs ``...+fixed_readout``); the candidates with
+the ``readout`` feature are fitted without it, so the ranking compares the readout measured
+from the pulse heights with the one fitted to the counts. Nested starts and likelihood-ratio
+tests pair only candidates that agree on the fixed readout.
 """
 from __future__ import annotations
 
@@ -36,10 +42,11 @@ from povmfit.fitting.inference.candidates import candidate_models, family_comput
 from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
 from povmfit.fitting.display import format_number, format_p_value, html_block, html_table, text_table
 from povmfit.fitting.inference.fit import FitNotConverged, FitResult, fit_scan
-from povmfit.fitting.inference.objective import cell_residuals
+from povmfit.fitting.inference.objective import cell_residuals, compile_programs, fit_cutoff
 from povmfit.fitting.inference.result import jsonable
 
-__all__ = ["candidate_models", "compare_models", "Comparison", "ADEQUACY_LEVEL"]
+__all__ = ["candidate_models", "compare_models", "Comparison", "ADEQUACY_LEVEL", "shared_compute_model",
+           "attach_fixed_readout"]
 
 ADEQUACY_LEVEL = 0.01
 CV_BIC_WINDOW = 10.0  # delta BIC beyond which the evidence is already "very strong" (Kass & Raftery 1995)
@@ -138,6 +145,34 @@ class Comparison:
         return notes
 
 
+def shared_compute_model(model: DetectorModel) -> DetectorModel:
+    """The model whose compiled code fits ``model`` in a ranking: the family's largest model
+    (``candidates.family_compute_model``) with ``model``'s fixed readout, if it has one (which
+    replaces the readout feature)."""
+    largest = family_compute_model(model)
+    if model.fixed_readout is None:
+        return largest
+    features = tuple(f for f in largest.features if f != "readout")
+    return DetectorModel(largest.family, largest.size, features, largest.saturation, model.fixed_readout)
+
+
+def attach_fixed_readout(models, matrix) -> list[DetectorModel]:
+    """``models`` with the readout matrix ``matrix`` put after each one that has neither the
+    ``readout`` feature nor a fixed readout already (unchanged when ``matrix`` is None)."""
+    if matrix is None:
+        return list(models)
+    out = []
+    for model in models:
+        if "readout" in model.features or model.fixed_readout is not None:
+            out.append(model)
+            continue
+        try:
+            out.append(model.with_fixed_readout(matrix))
+        except ValueError as error:
+            raise ArgumentError(f"candidates: {model.spec} with the fixed readout: {error}") from None
+    return out
+
+
 def _candidate(candidate) -> DetectorModel:
     if isinstance(candidate, DetectorModel):
         return candidate
@@ -169,9 +204,9 @@ def _fit_with_nested_start(scan, model, fits, calibration_uncertainty) -> FitRes
     """Fit ``model`` starting from the estimates of its best nested candidate (new parameters at
     their defaults); from the moment-based start when there is none, or when the nested start
     ends worse than the nested model itself (which the larger model contains)."""
-    compute = family_compute_model(model)
+    compute = shared_compute_model(model)
     nested = [f for f in fits.values() if f.model.family == model.family and f.model.saturation == model.saturation
-              and set(f.model.features) < set(model.features)]
+              and f.model.fixed_readout == model.fixed_readout and set(f.model.features) < set(model.features)]
     if nested:
         best = min(nested, key=lambda f: f.deviance)
         fit = fit_scan(scan, model, calibration_uncertainty, compute_model=compute, intervals=False, initial=best.values)
@@ -208,6 +243,7 @@ def compare_models(
     cv_top: int = 3,
     seed: int = 0,
     progress=None,
+    fixed_readout=None,
 ) -> Comparison:
     """Fit every candidate and rank them (see the module docstring).
 
@@ -220,6 +256,8 @@ def compare_models(
         seed: seed of the fold assignment.
         progress: optional ``progress(task, done, total)`` called with task "model ranking"
             before the first fit and after each; nothing is printed.
+        fixed_readout: None, or a readout matrix M[k, m] (rows: the scan's outcomes) put after
+            the candidates without the readout feature (see the module docstring).
 
     Raises:
         ArgumentError: a candidate spec or an option is invalid (the message names it).
@@ -230,11 +268,12 @@ def compare_models(
             raise ArgumentError(f"{name}: expected 0 or a whole number >= {2 if name == 'cv_folds' else 1}, got {value!r}")
     if candidates is None:
         candidates = candidate_models(scan.n_outcomes)
-    candidates = [_candidate(c) for c in candidates]
+    candidates = attach_fixed_readout([_candidate(c) for c in candidates], fixed_readout)
     if not candidates:
         raise NotIdentifiable(f"{scan.source}: no candidate model fits a scan with {scan.n_outcomes} outcomes")
     fits, skipped = {}, {}
     ordered = ranking_order(candidates)
+    compile_programs([shared_compute_model(m) for m in ordered], fit_cutoff(scan, calibration_uncertainty), progress)
     if progress is not None:
         progress("model ranking", 0, len(ordered))
     for i, model in enumerate(ordered):
@@ -277,14 +316,15 @@ def compare_models(
     leading = [r for r in rows[:cv_top] if r["bic"] - rows[0]["bic"] <= CV_BIC_WINDOW]
     for row in leading if cv_folds and scan.n_probes >= 2 * cv_folds else []:
         fit = fits[row["model"]]
-        row["cv_deviance"] = _cross_validation(scan, fit, family_compute_model(fit.model), cv_folds, seed, calibration_uncertainty)
+        row["cv_deviance"] = _cross_validation(scan, fit, shared_compute_model(fit.model), cv_folds, seed,
+                                               calibration_uncertainty)
 
     tests = []
-    by_features = {(f.model.family, f.model.features): f for f in fits.values()}
-    for (family, features), big in by_features.items():
+    by_features = {(f.model.family, f.model.features, f.model.fixed_readout): f for f in fits.values()}
+    for (family, features, fixed), big in by_features.items():
         for feature in features:
             smaller = tuple(x for x in features if x != feature)
-            small = by_features.get((family, smaller))
+            small = by_features.get((family, smaller, fixed))
             if small is not None:
                 tests.append(_lrt(small, big, feature))
 

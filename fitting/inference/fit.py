@@ -177,7 +177,9 @@ def fit_scan(
 
     Args:
         scan: a validated Scan (see ``scan.load_scan``).
-        model: the DetectorModel to fit, or its spec (``"array:8+dark+crosstalk"``).
+        model: the DetectorModel to fit, or its spec (``"array:8+dark+crosstalk"``); a model
+            with a fixed readout matrix (``DetectorModel.with_fixed_readout``) is fitted
+            through it: the residuals compare the counts with M @ theta_registered.
         calibration_uncertainty: relative 1-sigma uncertainty of the probe photon numbers
             (e.g. 0.05 for 5 %), or None to take the probes as exact.
         weighting: "deviance" (maximum likelihood) or "pearson".

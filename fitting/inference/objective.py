@@ -2,7 +2,9 @@
 
 Data flow: probe photon numbers (scaled by the probe-calibration factor) -> displaced thermal
 photon-number distributions P[p, n] -> model POVM theta[k, n] -> q[p, k] = sum_n P[p, n]
-theta[k, n] -> residuals against the raw counts.
+theta[k, n] -> residuals against the raw counts. A model with a fixed readout matrix M
+(``DetectorModel.fixed_readout``) returns the observed POVM M @ theta_registered, so its
+Jacobian is M @ dtheta_registered (M is a constant of the compiled program).
 
 The residual of cell (p, k) is the signed square root of its multinomial deviance,
 
@@ -32,7 +34,7 @@ from povmfit.fitting.data.errors import ArgumentError
 from povmfit.models import DetectorModel, choose_cutoff, null_value, probe_distributions, probe_distributions_numpy
 
 __all__ = [
-    "predicted_probabilities", "scaled_probe_distributions", "povm_and_jacobian", "fixed_probe_distributions", "fit_cutoff",
+    "predicted_probabilities", "scaled_probe_distributions", "povm_and_jacobian", "compile_programs", "fixed_probe_distributions", "fit_cutoff",
     "SCALE_SPAN", "PROBABILITY_FLOOR", "cell_residuals", "cell_residual_derivative", "FitProblem",
 ]
 
@@ -110,6 +112,21 @@ def povm_and_jacobian(model: DetectorModel, n_photons: int):
     return jax.jit(lambda x: jax.jacfwd(povm, has_aux=True)(x)[::-1])
 
 
+def compile_programs(models, n_photons: int, progress=None) -> None:
+    """Compile (or load from JAX's persistent compilation cache) the program of
+    :func:`povm_and_jacobian` for each model at ``n_photons`` photon numbers, reporting task
+    "compiling models" through ``progress(task, done, total)``. Tracing and compiling are most of
+    the first fit of a model family; done here, the fits that follow find the programs ready."""
+    models = list(dict.fromkeys(models))
+    if progress is not None:
+        progress("compiling models", 0, len(models))
+    for i, model in enumerate(models):
+        start = np.asarray(model.pack(model.starting_values()), dtype=float)
+        jax.block_until_ready(povm_and_jacobian(model, n_photons)(start))
+        if progress is not None:
+            progress("compiling models", i + 1, len(models))
+
+
 def cell_residuals(q, counts, shots, weighting: str = "deviance") -> np.ndarray:
     """Deviance (or Pearson) residual of every cell, shape (n_probes, n_outcomes)."""
     expected = shots[:, None] * np.maximum(q, PROBABILITY_FLOOR)
@@ -141,8 +158,8 @@ class FitProblem:
     """The least-squares problem of one model on one scan: the one residual function of the
     fit, its profiles and its bootstrap.
 
-    The POVM is computed by ``compute_model`` (a model with the same family and size and a
-    superset of the features); parameters of features the model lacks are held at values
+    The POVM is computed by ``compute_model`` (a model with the same family, size and fixed
+    readout matrix and a superset of the features); parameters of features the model lacks are held at values
     that switch the feature off. The parameter vector ``x`` runs over ``names`` (the model's
     parameters, then ``probe_scale`` with a calibration prior). Probes outside ``active``
     are predicted but not fitted.
@@ -156,7 +173,8 @@ class FitProblem:
         full = list(compute_model.parameter_names) + (["probe_scale"] if self.calibrated else [])
         self.names = tuple(model.parameter_names) + (("probe_scale",) if self.calibrated else ())
         missing = [n for n in self.names if n not in full]
-        if missing or compute_model.family != model.family or compute_model.n_outcomes != model.n_outcomes:
+        if (missing or compute_model.family != model.family or compute_model.n_outcomes != model.n_outcomes
+                or compute_model.fixed_readout != model.fixed_readout):
             raise ArgumentError(f"compute_model: {compute_model.spec} cannot stand in for {model.spec}")
         self.free_index = np.array([full.index(n) for n in self.names])
         self.template = np.array([0.0 if n in self.names else null_value(n) for n in full])

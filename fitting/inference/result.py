@@ -30,7 +30,10 @@ class FitResult:
     for in ``fit_scan(..., bootstrap=N, seed=S)``, not added afterwards.
 
     Attributes:
-        model: the fitted DetectorModel.
+        model: the fitted DetectorModel. With a fixed readout matrix M
+            (``model.fixed_readout``) every POVM here (``povm_and_jacobian``,
+            ``povm_with_errors``, the figures, ``predicted``, the detector file) is the
+            observed one, M @ theta_registered.
         names: fitted parameter names: the model's parameters in its order, then
             ``probe_scale`` when a calibration prior was given.
         values: {name: estimate}.
@@ -216,11 +219,16 @@ class FitResult:
         else:
             calibration = (f"probe calibration {self.calibration_uncertainty:.3g} relative (1 sigma), fitted as "
                            "probe_scale; stderr = statistical (+) calibration in quadrature")
-        return [
+        lines = [
             f"Fit of {model.spec} ({model.family}, {size}; features: {features})",
             calibration,
             f"{self.weighting} weighting, photon-number cutoff {self.n_photons}",
         ]
+        if model.fixed_readout is not None:
+            rows, columns = len(model.fixed_readout), len(model.fixed_readout[0])
+            lines.append(f"fixed readout: a known {rows} x {columns} misassignment matrix after the model "
+                         "(outcomes x registered numbers)")
+        return lines
 
     def _table(self):
         header = ["parameter", "value ± stderr", "statistical", "calibration", "95 % interval", "method"]

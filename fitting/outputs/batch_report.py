@@ -5,7 +5,8 @@ against the condition, error bars = the 95 % interval of each scan), one series 
 combination of the text conditions (colour and marker), and, against the swept bias, the
 plateau edges and the dark-limit crossing as vertical lines. Probabilities spanning more than
 a decade are drawn on a logarithmic axis. Tables follow: the sweep figures, every scan
-(linked to its own report), and the scans that were refused or failed with their reasons.
+(linked to its own report, with its conditions and the well-known metadata keys of its
+sidecar), and the scans that were refused or failed with their reasons.
 Everything taken from the data is HTML-escaped; the page loads nothing from the network.
 """
 from __future__ import annotations
@@ -18,6 +19,7 @@ from pathlib import Path
 import numpy as np
 
 from povmfit.fitting.data.files import atomic_write_bytes, atomic_write_text
+from povmfit.fitting.data.metadata import KNOWN_KEYS
 from povmfit.fitting.outputs import plots
 from povmfit.fitting.outputs.plots import DASHES, FIGURE_WIDTH, svg_document, legend, linear_ticks, Panel, panel_boxes
 from povmfit.fitting.outputs.report import render_html
@@ -181,6 +183,11 @@ def _sweep_rows(result) -> list[list[str]]:
     return rows
 
 
+def metadata_columns(frame, conditions) -> list[str]:
+    """The figures table's columns that are well-known metadata keys but not conditions."""
+    return [key for key in KNOWN_KEYS if key in frame.columns and key not in conditions]
+
+
 def batch_report_html(result, frame) -> str:
     manifest = result.manifest
     text_columns = list(manifest.text)
@@ -213,13 +220,14 @@ def batch_report_html(result, frame) -> str:
                       f"{_e(', '.join(text_columns) or 'batch')}.</figcaption></figure>")
     if blocks:
         sections.append(("Figures against conditions", "".join(blocks)))
-    head = ["scan", *manifest.conditions, "status", "model", *[_LABELS.get(f, f) for f in figures], "fit p", "cross-check"]
+    described = [*manifest.conditions, *metadata_columns(frame, manifest.conditions)]
+    head = ["scan", *described, "status", "model", *[_LABELS.get(f, f) for f in figures], "fit p", "cross-check"]
     rows = []
     for row in frame.to_dict("records"):
         link = _e(row["scan"])
         if row["output"]:
             link = f'<a href="{_e(row["output"])}/report.html">{link}</a>'
-        rows.append([link, *[_num(row[c]) for c in manifest.conditions], _e(row["status"]), _e(row["model"] or ""),
+        rows.append([link, *[_num(row[c]) for c in described], _e(row["status"]), _e(row["model"] or ""),
                      *[f"{_num(row[f + '_value'])} ± {_num(row[f + '_stderr'], 2)}" for f in figures],
                      _num(row["gof_p_value"], 3), _e(row["cross_check"])])
     sections.append(("Scans", _table(head, rows)))

@@ -1,6 +1,10 @@
 """What the terminal shows: the datasheet in words and SI units, and a progress bar."""
 from __future__ import annotations
 
+import sys
+import threading
+import time
+
 from povmfit.fitting.display import FIGURE_UNITS, format_interval, format_p_value, format_quantity, text_table
 
 __all__ = ["format_summary", "TerminalProgress", "CANDIDATES_SHOWN"]
@@ -91,25 +95,56 @@ def format_summary(sheet: dict, files: dict) -> str:
 
 
 class TerminalProgress:
-    """A ``progress(task, done, total)`` callback drawing one bar per task on a stream
-    (stderr by default); silent when the stream is not a terminal."""
+    """A ``progress(task, done, total)`` callback for a terminal (stderr by default).
+
+    One status line shows every unfinished task with its bar, count and the seconds since it
+    began, redrawn every second so that a long first step (compiling a model's program, a
+    worker process starting) is visibly alive; a finished task gets a line of its own. Tasks
+    may arrive from several threads (the worker process's progress is relayed on one). Silent
+    when the stream is not a terminal (logs and pipes get no control characters).
+    """
+
+    TICK_S = 1.0
+    BAR = 20
 
     def __init__(self, stream=None):
-        import sys
-
         self.stream = stream if stream is not None else sys.stderr
         self.active = bool(getattr(self.stream, "isatty", lambda: False)())
-        self._task = None
+        self._tasks: dict = {}  # task -> [done, total, start time]
+        self._lock = threading.Lock()
+        self._ticker = None
 
     def __call__(self, task: str, done: int, total: int) -> None:
         if not self.active or total <= 0:
             return
-        if task != self._task and self._task is not None:
-            self.stream.write("\n")
-        self._task = task
-        filled = int(30 * min(done, total) / total)
-        self.stream.write(f"\r{task:<28} [{'#' * filled}{'.' * (30 - filled)}] {done}/{total}")
-        if done >= total:
-            self.stream.write("\n")
-            self._task = None
+        with self._lock:
+            entry = self._tasks.setdefault(task, [0, total, time.monotonic()])
+            entry[0], entry[1] = min(done, total), total
+            if done >= total:
+                del self._tasks[task]
+                self.stream.write("\r\033[K" + self._describe(task, entry) + "\n")
+            self._draw()
+            if self._tasks and self._ticker is None:
+                self._start_ticker()
+
+    def _describe(self, task: str, entry) -> str:
+        done, total, start = entry
+        filled = int(self.BAR * done / total)
+        return f"{task} [{'#' * filled}{'.' * (self.BAR - filled)}] {done}/{total} {time.monotonic() - start:.0f} s"
+
+    def _draw(self) -> None:
+        self.stream.write("\r\033[K" + " | ".join(self._describe(t, e) for t, e in self._tasks.items()))
         self.stream.flush()
+
+    def _start_ticker(self) -> None:
+        def tick():
+            while True:
+                time.sleep(self.TICK_S)
+                with self._lock:
+                    if not self._tasks:
+                        self._ticker = None
+                        return
+                    self._draw()
+
+        self._ticker = threading.Thread(target=tick, daemon=True, name="povmfit-progress")
+        self._ticker.start()

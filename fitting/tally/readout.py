@@ -15,22 +15,32 @@ Schema ``povmfit.readout/1`` (JSON object):
 * ``goodness_of_fit``, ``provenance``.
 
 :func:`load_readout` returns the validated matrix; :func:`apply_readout` puts it after a
-detector's registered-photon POVM as a fixed readout stage.
+detector's registered-photon POVM as a fixed readout stage. :func:`resolve_readout` turns what a
+user passes to ``fit(..., readout=...)`` (a path or an array) into the matrix and the record
+the provenance keeps; :func:`check_readout_outcomes` refuses a matrix whose rows do not match
+the scan's outcomes. The fit itself carries the matrix in its model
+(``DetectorModel.fixed_readout``).
 """
 from __future__ import annotations
 
+import hashlib
 import json
 import math
+import os
+from os import PathLike
 
 import jax.numpy as jnp
 import numpy as np
 
-from povmfit.fitting.data.errors import InputFileError
+from povmfit.models import READOUT_COLUMN_TOLERANCE, check_readout_matrix, fixed_readout_columns
 
-__all__ = ["SCHEMA", "load_readout", "apply_readout", "extend_columns", "COLUMN_TOLERANCE"]
+from povmfit.fitting.data.errors import ArgumentError, InputFileError
+
+__all__ = ["SCHEMA", "load_readout", "apply_readout", "extend_columns", "COLUMN_TOLERANCE", "resolve_readout",
+           "check_readout_outcomes"]
 
 SCHEMA = "povmfit.readout/1"
-COLUMN_TOLERANCE = 1e-9  # columns must sum to 1 within this
+COLUMN_TOLERANCE = READOUT_COLUMN_TOLERANCE  # columns must sum to 1 within this
 
 
 def load_readout(path) -> np.ndarray:
@@ -57,12 +67,10 @@ def load_readout(path) -> np.ndarray:
     if matrix.ndim != 2 or matrix.shape[0] < 2 or matrix.shape[1] < matrix.shape[0]:
         raise InputFileError(f"{name}: misassignment.matrix: expected shape (K+1, n_columns) with K >= 1 and "
                              f"n_columns >= K+1, got {matrix.shape}")
-    if not np.isfinite(matrix).all() or (matrix < 0).any() or (matrix > 1).any():
-        raise InputFileError(f"{name}: misassignment.matrix: entries must be probabilities in [0, 1]")
-    sums = matrix.sum(axis=0)
-    bad = np.nonzero(np.abs(sums - 1) > COLUMN_TOLERANCE)[0]
-    if bad.size:
-        raise InputFileError(f"{name}: misassignment.matrix: column {int(bad[0])} sums to {sums[bad[0]]:.12g}, not 1")
+    try:
+        check_readout_matrix(matrix)
+    except ValueError as error:
+        raise InputFileError(f"{name}: misassignment.matrix: {error}") from None
     max_outcome = record.get("max_outcome")
     if max_outcome is not None and max_outcome != matrix.shape[0] - 1:
         raise InputFileError(f"{name}: max_outcome {max_outcome} does not match the matrix's {matrix.shape[0]} rows")
@@ -70,13 +78,43 @@ def load_readout(path) -> np.ndarray:
 
 
 def extend_columns(matrix: np.ndarray, n_columns: int) -> np.ndarray:
-    """``matrix`` cut or padded to ``n_columns`` columns; padded columns report outcome K."""
-    matrix = np.asarray(matrix, dtype=float)
-    if n_columns <= matrix.shape[1]:
-        return matrix[:, :n_columns]
-    pad = np.zeros((matrix.shape[0], n_columns - matrix.shape[1]))
-    pad[-1] = 1.0
-    return np.concatenate([matrix, pad], axis=1)
+    """``matrix`` cut or padded to ``n_columns`` columns; padded columns report outcome K
+    (the model's fixed readout stage uses the same rule)."""
+    return fixed_readout_columns(matrix, n_columns)
+
+
+def resolve_readout(readout) -> tuple[np.ndarray | None, object]:
+    """(matrix M[k, m], provenance record) of a ``readout=`` argument.
+
+    ``readout`` is None (no fixed readout: ``(None, None)``), the path of a ``readout.json``
+    (record ``{"file": its name, "sha256": hex digest of its bytes}``) or an array M[k, m]
+    of shape (K+1, n_registered) with columns summing to 1 (record ``"array"``).
+    Raises InputFileError (a bad file, naming it) or ArgumentError (a bad array)."""
+    if readout is None:
+        return None, None
+    if isinstance(readout, (str, PathLike)):
+        matrix = load_readout(readout)
+        try:
+            with open(readout, "rb") as handle:
+                digest = hashlib.sha256(handle.read()).hexdigest()
+        except OSError as error:
+            raise InputFileError(f"{readout}: cannot read ({error.strerror or error})") from None
+        return matrix, {"file": os.fspath(readout), "sha256": digest}
+    try:
+        return check_readout_matrix(readout), "array"
+    except (TypeError, ValueError) as error:
+        raise ArgumentError(f"readout: {error}") from None
+
+
+def check_readout_outcomes(matrix: np.ndarray, n_outcomes: int, readout_name: str, scan_name: str,
+                           from_file: bool = True) -> None:
+    """Refuse a readout matrix whose rows are not the scan's outcomes 0..K, with one line
+    naming both and both counts (InputFileError for a file, ArgumentError for an array)."""
+    rows = int(np.shape(matrix)[0])
+    if rows != n_outcomes:
+        error = InputFileError if from_file else ArgumentError
+        raise error(f"{readout_name}: the readout matrix has {rows} rows (outcomes 0..{rows - 1}) but the "
+                    f"scan {scan_name} has {n_outcomes} outcomes (count_0..count_{n_outcomes - 1})")
 
 
 def apply_readout(theta, matrix):

@@ -6,6 +6,16 @@ Data flow: manifest (``data.manifest``) -> one Dask task per scan, each the whol
 sweep figures per group of scans (``inference.sweeps``) -> ``figures.csv``/``.parquet``,
 ``sweeps.csv`` and ``batch_report.html`` (``outputs.batch_report``).
 
+Measurement metadata: the well-known keys of ``data.metadata`` (device, serial,
+wavelength_nm, ...) of each scan come from its sidecar ``SCAN.meta.json``/``.toml`` and from
+the manifest's condition columns of those names, the manifest overriding the sidecar (as
+``--meta`` does for ``povmfit fit``). Manifest cells are checked before any work (one line
+naming the manifest, the row and the column); each scan's job gets them as ``metadata``, so its
+datasheet, detector file and report carry them. The figures table gets one column per
+well-known key found in some sidecar and not already a condition column (empty text or NaN
+where a scan has none), after the conditions; ``sweeps.csv`` carries a key's value where every
+scan of the swept group shares it.
+
 A scan that is refused (missing or malformed file, a model the scan cannot identify) gets
 status ``refused`` and its one-line reason; the others go on. Statuses: ``ok``, ``refused``,
 ``not_converged`` (the optimiser stopped without meeting its criteria: the outputs are
@@ -34,6 +44,7 @@ from povmfit.fitting.data.errors import ArgumentError, PovmfitError
 from povmfit.fitting.data.manifest import FIGURE_NAMES, FIGURE_SUFFIXES, Manifest, load_manifest, manifest_from_frame
 from povmfit.fitting.display import format_number, format_uncertain, html_block, html_table, text_table
 from povmfit.fitting.data.arguments import as_calibration_uncertainty, as_model
+from povmfit.fitting.data.metadata import KNOWN_KEYS, check_metadata, metadata_for_scan
 
 __all__ = ["characterise_many", "BatchResult", "STATUSES"]
 
@@ -46,7 +57,8 @@ class BatchResult:
 
     Attributes:
         manifest: the validated :class:`~povmfit.fitting.data.manifest.Manifest`.
-        rows: one dict per scan, in manifest order: ``scan``, the conditions, ``status``,
+        rows: one dict per scan, in manifest order: ``scan``, the conditions, the well-known
+            metadata keys of the scans' sidecars that are not conditions, ``status``,
             ``reason`` (one line, empty when ok), ``model`` (the chosen spec), the
             ``calibration_uncertainty`` used, for every figure ``FIGURE_value``,
             ``FIGURE_stderr``, ``FIGURE_ci95_lo``, ``FIGURE_ci95_hi`` (NaN where a scan has
@@ -54,7 +66,8 @@ class BatchResult:
             ``gof_p_value``, ``deviance``, ``dof``, ``cross_check`` (its verdict),
             ``output`` (the scan's folder relative to ``out_dir``) and ``seconds``.
         sweeps: one dict per group of scans swept in ``bias`` (the other conditions fixed):
-            the group's conditions, ``bias_column``, ``scans`` and the figures of
+            the group's conditions, ``metadata`` (the well-known keys every scan of the group
+            shares; empty text or NaN otherwise), ``bias_column``, ``scans`` and the figures of
             ``inference.sweeps`` (plateau ``start``, ``end``, ``width``, ``efficiency``;
             ``dark_limit_bias`` with a dark limit); empty without a bias condition.
         options: the batch options (model, calibration_uncertainty, gate_duration_s,
@@ -126,7 +139,8 @@ class BatchResult:
     def to_dict(self) -> dict:
         """Plain JSON-able data: options, rows, sweeps and the files written."""
         return {"manifest": self.manifest.source, "conditions": list(self.manifest.conditions),
-                "numeric_conditions": list(self.manifest.numeric), "options": dict(self.options),
+                "numeric_conditions": list(self.manifest.numeric),
+                "metadata_columns": metadata_columns(self.manifest, self.rows), "options": dict(self.options),
                 "rows": [dict(row) for row in self.rows], "sweeps": [dict(s) for s in self.sweeps],
                 "files": {k: str(v) for k, v in self.files.items()}}
 
@@ -136,9 +150,24 @@ def table_columns(manifest: Manifest, rows) -> list[str]:
     present = [name for name in FIGURE_NAMES if any(not _nan(row.get(f"{name}_value")) for row in rows)]
     present = present or ["efficiency", "vacuum_click_probability"]
     figures = [f"{name}_{suffix}" for name in present for suffix in FIGURE_SUFFIXES]
-    return (["scan", *manifest.conditions, "status", "reason", "model", "calibration_uncertainty", *figures,
-             "efficiency_stat_stderr", "efficiency_calibration_stderr", "gof_p_value", "deviance", "dof",
-             "cross_check", "output", "seconds"])
+    return (["scan", *manifest.conditions, *metadata_columns(manifest, rows), "status", "reason", "model",
+             "calibration_uncertainty", *figures, "efficiency_stat_stderr", "efficiency_calibration_stderr",
+             "gof_p_value", "deviance", "dof", "cross_check", "output", "seconds"])
+
+
+def metadata_columns(manifest: Manifest, rows) -> list[str]:
+    """The well-known metadata keys (in ``KNOWN_KEYS`` order) some row carries that are not
+    condition columns of the manifest: the figures table's metadata columns."""
+    return [key for key in KNOWN_KEYS if key not in manifest.conditions and any(key in row for row in rows)]
+
+
+def _metadata_blank(key: str):
+    """The empty cell of a metadata column: '' for a text key, NaN for a number."""
+    return "" if KNOWN_KEYS[key][0] == "text" else math.nan
+
+
+def _same(a, b) -> bool:
+    return a == b or (_nan(a) and _nan(b))
 
 
 def _nan(value) -> bool:
@@ -165,7 +194,7 @@ def _sweep_line(sweep: dict) -> str:
 
 
 def _flat_sweep(sweep: dict) -> dict:
-    out = {**sweep["group"], "bias_column": sweep["bias_column"], "scans": sweep["scans"]}
+    out = {**sweep["group"], **sweep.get("metadata", {}), "bias_column": sweep["bias_column"], "scans": sweep["scans"]}
     for name in ("start", "end", "width", "efficiency", "dark_limit_bias"):
         figure = sweep.get(name)
         if figure is None:
@@ -198,10 +227,14 @@ def run_scan(job: dict) -> dict:
     started = time.perf_counter()
     row = _empty_row(job)
     try:
+        # the sidecar's metadata merged with the manifest's, read first so that a refused scan keeps it
+        known = {k: v for k, v in metadata_for_scan(job["path"], job["metadata"]).items() if k in KNOWN_KEYS}
+        row.update({k: v for k, v in known.items() if k not in job["conditions"]})
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", FitNotConverged)
             result = characterise(job["path"], job["model"], calibration_uncertainty=job["calibration_uncertainty"],
-                                  gate_duration=job["gate_duration"], seed=job["seed"], n_jobs=1)
+                                  gate_duration=job["gate_duration"], seed=job["seed"], n_jobs=1,
+                                  metadata=job["metadata"])
         if job["out_dir"] is not None:
             folder = Path(job["out_dir"]) / job["output"]
             if folder.is_dir():  # only with overwrite: a batch's folder is checked empty before it starts
@@ -381,6 +414,7 @@ def characterise_many(manifest, out_dir=None, *, model="auto", calibration_uncer
     if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
         raise ArgumentError(f"seed: expected a whole number >= 0, got {seed!r}")
     bias = _bias_column(manifest, bias)
+    row_metadata = manifest_metadata(manifest)
     out = None if out_dir is None else Path(out_dir)
     if out is not None and out.exists() and (not out.is_dir() or (any(out.iterdir()) and not overwrite)):
         raise ArgumentError(f"out_dir: {out} " + ("is not a folder" if not out.is_dir() else
@@ -388,7 +422,7 @@ def characterise_many(manifest, out_dir=None, *, model="auto", calibration_uncer
                             "the batch's results, or choose another folder"))
     folders = _folders(manifest)
     jobs = [{"scan": row.scan, "path": str(row.path), "conditions": row.conditions,
-             "model": row.model or model, "seed": seed, "gate_duration": gate_duration,
+             "model": row.model or model, "seed": seed, "gate_duration": gate_duration, "metadata": row_metadata[i],
              "calibration_uncertainty": row.calibration_uncertainty if row.calibration_uncertainty is not None
              else calibration_uncertainty, "out_dir": None if out is None else str(out.resolve()),
              "output": folders[i], "report": report, "worker_setup": worker_setup}
@@ -397,7 +431,9 @@ def characterise_many(manifest, out_dir=None, *, model="auto", calibration_uncer
         rows = _run_processes(jobs, workers, progress)
     else:
         rows = _run_distributed(jobs, scheduler, workers, progress)
+    extra = metadata_columns(manifest, rows)
     for row, folder in zip(rows, folders):
+        row.update({key: _metadata_blank(key) for key in extra if key not in row})
         row["calibration_uncertainty"] = row["calibration_uncertainty"] or 0.0
         row["output"] = folder if out is not None and row["status"] in ("ok", "not_converged") else ""
     options = {"model": model, "calibration_uncertainty": calibration_uncertainty, "gate_duration_s": gate_duration,
@@ -411,6 +447,21 @@ def characterise_many(manifest, out_dir=None, *, model="auto", calibration_uncer
         files = write_batch_outputs(result, out, report=report)
         result = BatchResult(manifest=manifest, rows=result.rows, sweeps=sweeps, options=options, out_dir=out, files=files)
     return result
+
+
+def manifest_metadata(manifest: Manifest) -> list[dict]:
+    """Per row, the manifest's condition cells whose column is a well-known metadata key,
+    checked as metadata (InputFileError naming the manifest, the row and the column)."""
+    known = [name for name in manifest.conditions if name in KNOWN_KEYS]
+    return [check_metadata({name: _metadata_cell(row.conditions[name], name) for name in known},
+                           f"{manifest.source}: {row.place}") for row in manifest.rows]
+
+
+def _metadata_cell(value, name: str):
+    """A manifest cell as metadata: a whole number read into a text key loses its '.0'."""
+    if KNOWN_KEYS[name][0] == "text" and isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return value
 
 
 def _as_manifest(manifest) -> Manifest:
@@ -450,6 +501,12 @@ def _folders(manifest: Manifest) -> list[str]:
     return [f"scans/{stem}" if stems.count(stem) == 1 else f"scans/{stem}-{i + 1}" for i, stem in enumerate(stems)]
 
 
+def shared_metadata(members, keys) -> dict:
+    """{key: the value every member shares, or the blank cell where they differ}."""
+    return {key: members[0][key] if all(_same(m[key], members[0][key]) for m in members) else _metadata_blank(key)
+            for key in keys}
+
+
 def sweep_figures(manifest: Manifest, rows, bias: str, plateau: float, dark_limit, seed: int):
     """Plateau and dark-limit figures per group of ok scans sharing every other condition."""
     from povmfit.fitting.inference.sweeps import dark_limit_crossing, plateau as plateau_figures
@@ -459,9 +516,10 @@ def sweep_figures(manifest: Manifest, rows, bias: str, plateau: float, dark_limi
     for row in rows:
         if row["status"] == "ok":
             groups.setdefault(tuple(row[c] for c in others), []).append(row)
+    extra = metadata_columns(manifest, rows)
     for key, members in groups.items():
-        sweep = {"group": dict(zip(others, key)), "bias_column": bias, "scans": len(members),
-                 "plateau_fraction": float(plateau)}
+        sweep = {"group": dict(zip(others, key)), "metadata": shared_metadata(members, extra), "bias_column": bias,
+                 "scans": len(members), "plateau_fraction": float(plateau)}
         values = [m[bias] for m in members]
         if len(members) < 2 or len(set(values)) < len(values):
             sweep["note"] = ("fewer than two scans: no sweep figures" if len(members) < 2

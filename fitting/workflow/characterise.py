@@ -30,7 +30,7 @@ from povmfit.fitting.inference.compare import Comparison
 from povmfit.fitting.inference.fit import FitResult
 from povmfit.fitting.tomography.scan_reconstruction import ScanReconstruction
 from povmfit.fitting.inference.fit import check_identifiable
-from povmfit.fitting.data.arguments import as_model, as_models, as_scan
+from povmfit.fitting.data.arguments import as_models, as_scan
 
 __all__ = ["characterise", "Characterisation"]
 
@@ -58,7 +58,7 @@ class Characterisation:
         cross_check: JSON-able comparison of the fit with the reconstructions (see
             ``tomography.cross_check``), with its verdict.
         options: the analysis options (calibration_uncertainty, gate_duration_s, weighting,
-            bootstrap, seed, model, candidates), as recorded in the provenance.
+            bootstrap, seed, model, candidates, readout), as recorded in the provenance.
         metadata: conditions and identity of the measurement (device, serial, wavelength_nm,
             temperature_k, bias_current_ua, ...; see ``data.metadata``), from the scan's
             sidecar file and the ``metadata`` argument.
@@ -164,7 +164,7 @@ class Characterisation:
 
 def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty=None, gate_duration=None,
                  weighting: str = "deviance", bootstrap: int = 0, seed: int = 0, n_jobs: int = 1,
-                 metadata: dict | None = None, progress=None) -> Characterisation:
+                 metadata: dict | None = None, readout=None, progress=None) -> Characterisation:
     """Characterise a detector from one scan: rank the candidate models (``model="auto"``) or
     fit the given one, reconstruct the POVM and the Wigner values model-free, cross-check.
 
@@ -182,31 +182,36 @@ def characterise(scan, model="auto", *, candidates=None, calibration_uncertainty
             computes the model-free POVM in one worker process beside the ranking.
         metadata: conditions of the measurement ({"wavelength_nm": 1550, "device": ...});
             a sidecar ``SCAN.meta.json``/``.toml`` beside a scan file is read first.
+        readout: None, a ``readout.json`` path or an array M[k, m]: a fixed readout stage after
+            the model (see :func:`povmfit.fit`); the options record its file name and SHA-256
+            (or "array").
         progress: optional callback ``progress(task, done, total)``.
     """
-    from povmfit.fitting.workflow.api import rank_and_fit
+    from povmfit.fitting.workflow.api import model_with_readout, rank_and_fit, readout_for_scan
 
     conditions = metadata_for_scan(scan if isinstance(scan, (str, PathLike)) else _source_file(scan), metadata)
     scan = as_scan(scan)
+    readout_matrix, readout_record = readout_for_scan(readout, scan)
     options = _options(model, candidates, calibration_uncertainty, gate_duration, weighting, bootstrap, seed)
+    options["readout"] = readout_record
     # refuse what can be refused before any work starts
     if scan.n_probes < 2:
         raise NotIdentifiable(f"{scan.source}: the model-free cross-check needs two or more probes, the scan has "
                               f"{scan.n_probes} (fit one model with povmfit.fit instead)")
     if not (isinstance(model, str) and model.strip().lower() == "auto"):
-        check_identifiable(scan, as_model(model))
+        check_identifiable(scan, model_with_readout(model, readout_matrix))
     as_models(candidates)
     from povmfit.fitting.tomography.model_free import (
         CROSS_CHECK_SIMULATIONS, RECONSTRUCTION_BOOTSTRAP, povm_reconstruction, reconstructions_under_model,
         wigner_reconstructions,
     )
 
-    with _executor(n_jobs) as pool:
-        # a worker process cannot call back into this one: its progress is not reported
+    with _executor(n_jobs, progress) as pool:
         povm_future = _submit(pool, povm_reconstruction, scan, seed, RECONSTRUCTION_BOOTSTRAP,
-                              None if pool is not None else progress)
+                              progress if pool is None else _report_to_parent)
         comparison, result = rank_and_fit(scan, model, calibration_uncertainty, candidates=candidates,
-                                          weighting=weighting, bootstrap=bootstrap, seed=seed, progress=progress)
+                                          weighting=weighting, bootstrap=bootstrap, seed=seed,
+                                          readout=readout_matrix, progress=progress)
         wigner = wigner_reconstructions(scan, seed, RECONSTRUCTION_BOOTSTRAP, progress=progress)
         reconstruction = povm_future.result()
         under_model = _submit(pool, reconstructions_under_model, scan, result.predicted, reconstruction, seed)
@@ -296,8 +301,12 @@ is stopped with a one-line WorkerError; a healthy worker answers well within it.
 
 
 @contextmanager
-def _executor(n_jobs: int):
+def _executor(n_jobs: int, progress=None):
     """A one-worker process pool for n_jobs >= 2 (or -1), else None (work done here).
+
+    The worker's progress (tasks given :func:`_report_to_parent` as their callback) comes back
+    through a queue and is passed to ``progress`` on a thread of this process, the task's name
+    marked "(worker)".
 
     The worker is a fresh interpreter (spawn) started isolated from the working folder: the
     folder is not on its module path (``PYTHONSAFEPATH`` during its start-up, and the module
@@ -313,8 +322,11 @@ def _executor(n_jobs: int):
         yield None
         return
     # spawn: a fresh interpreter (JAX's threads do not survive fork)
-    pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"),
-                               initializer=_worker_setup, initargs=(os.getpid(),))
+    context = multiprocessing.get_context("spawn")
+    reports = context.Queue() if progress is not None else None
+    pool = ProcessPoolExecutor(max_workers=1, mp_context=context, initializer=_worker_setup,
+                               initargs=(os.getpid(), reports))
+    relay = _relay_progress(reports, progress) if reports is not None else None
     try:
         _start_isolated(pool)
         yield pool
@@ -322,15 +334,43 @@ def _executor(n_jobs: int):
         # the worker's result is no longer wanted: stop it rather than wait for it
         _stop_workers(pool)
         raise
+    finally:
+        if relay is not None:
+            reports.put(None)
+            relay.join(timeout=5)
     pool.shutdown(wait=True)
 
 
-def _worker_setup(parent_pid: int) -> None:
-    """In the worker: ignore SIGINT (the parent stops the worker) and end when the parent is
-    gone (killed), so no worker outlives its job."""
+_REPORTS = None  # in the worker: the queue its progress goes to
+
+
+def _report_to_parent(task: str, done: int, total: int) -> None:
+    """The progress callback of a task run in the worker: the report goes to the parent."""
+    if _REPORTS is not None:
+        _REPORTS.put((f"{task} (worker)", done, total))
+
+
+def _relay_progress(reports, progress):
+    """A thread passing the worker's reports to ``progress`` until it reads None."""
+    import threading
+
+    def relay():
+        for report in iter(reports.get, None):
+            progress(*report)
+
+    thread = threading.Thread(target=relay, daemon=True, name="povmfit-worker-progress")
+    thread.start()
+    return thread
+
+
+def _worker_setup(parent_pid: int, reports=None) -> None:
+    """In the worker: ignore SIGINT (the parent stops the worker), send progress to
+    ``reports``, and end when the parent is gone (killed), so no worker outlives its job."""
     import threading
     import time
 
+    global _REPORTS
+    _REPORTS = reports
     signal.signal(signal.SIGINT, signal.SIG_IGN)
 
     def watch():
