@@ -78,7 +78,9 @@ def figures(result, gate_duration_s: float | None = None) -> dict:
         ci_vac = (min(ends), max(ends))
     out["vacuum_click_probability"] = entry(p_vac, se_vac, ci_vac)
     if dark is None:
-        out["vacuum_click_probability"]["note"] = "the model has no dark counts"
+        out["vacuum_click_probability"]["note"] = (
+            "the model has no dark counts" if result.model.fixed_readout is None
+            else "the model has no dark counts: vacuum gives a click only through the fixed readout matrix (1 - M[0, 0])")
 
     if gate_duration_s:
         def rate(p):

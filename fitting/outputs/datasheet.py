@@ -21,6 +21,8 @@ def model_block(model) -> dict:
         block["pixels"] = model.size
         if model.saturation is not None:
             block["max_outcome"] = model.saturation
+    if model.fixed_readout is not None:
+        block["max_outcome"] = model.n_outcomes - 1
     return block
 
 
