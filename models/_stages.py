@@ -37,10 +37,6 @@ _DEVIANCE_SERIES_BELOW = 0.25  # |x - m|/(x + m) below this uses the series of t
 _DEVIANCE_SERIES_TERMS = 15  # 0.25^(2*15) < 1e-18: the series is exhausted in double precision
 
 
-def _log_comb(n, k):
-    return gammaln(n + 1.0) - gammaln(k + 1.0) - gammaln(n - k + 1.0)
-
-
 def _powers(x, count: int):
     """x^0 .. x^(count-1) by repeated multiplication: exact derivative at x = 0."""
     return jnp.cumprod(jnp.concatenate([jnp.ones(1), jnp.full(count - 1, 1.0) * x]))
@@ -214,40 +210,52 @@ def uniform_pixel_matrix(pixels: int, n_photons: int):
     return jnp.asarray(np.stack(columns, axis=1))
 
 
+_SPLIT_ROWS_PER_BLOCK = 256  # photon numbers per block of the split's transfer table (memory ~ block * n)
+
+
+@functools.partial(jax.jit, static_argnums=1)
+def _split_pixel_matrix(ratios, n_photons: int):
+    pixels = ratios.shape[0]
+    shares = ratios[1:] / jnp.cumsum(ratios)[1:]  # p_i = r_i / (r_1 + ... + r_i), i >= 2
+    block = min(n_photons, _SPLIT_ROWS_PER_BLOCK)
+    n_blocks = -(-n_photons // block)
+    size = max(n_blocks * block, 2)
+    photons = jnp.arange(n_photons)
+    earlier = photons[None, :]  # k: photons on the earlier pixels
+    # one pixel: no photon hits nothing, any photon hits that pixel
+    first = jnp.zeros((pixels + 1, n_photons)).at[0, 0].set(1.0).at[1, 1:].set(1.0)
+
+    def add_pixel(hits, share):
+        # new[j, m] = Binom(0 | m, p) hits[j, m] + sum_{k<m} Binom(m-k | m, p) hits[j-1, k]
+        shifted = jnp.concatenate([jnp.zeros((1, n_photons)), hits[:-1]], axis=0)
+
+        def block_of_rows(first_row):
+            total = first_row + jnp.arange(block)[:, None]  # m: photons on the pixels so far
+            landing = _binomial_pmf(share, total, total - earlier, size)  # m-k photons on the new pixel
+            return jnp.where(earlier < total, landing, 0.0) @ shifted.T  # (block, pixels+1)
+
+        arrived = jax.lax.map(block_of_rows, jnp.arange(n_blocks) * block).reshape(-1, pixels + 1)[:n_photons].T
+        missed = _binomial_pmf(share, photons, jnp.zeros_like(photons), size)  # (1-p)^m
+        return missed * hits + arrived, None
+
+    # a scan over pixels (and a map over blocks of photon numbers) keeps the program small
+    return jax.lax.scan(add_pixel, first, shares)[0]
+
+
 def split_pixel_matrix(ratios, n_photons: int):
-    """Photons split over pixels with unequal probabilities ``ratios`` (summing to one).
+    """Photons split over pixels with unequal probabilities proportional to ``ratios``.
 
     ``M[j, m]`` = P(j distinct pixels hit | m photons), shape (len(ratios)+1, n_photons).
-    Uses the exponential generating function prod_i (1 + y (exp(r_i x) - 1)): the coefficient
-    of y^j x^m/m! is the wanted probability. Multiplying in one pixel at a time is a binomial
-    convolution in m with only non-negative terms, so there is no cancellation.
-    Valid for n_photons <= 1000 (binomial coefficients stay finite).
+    Pixels are added one at a time: with pixels 1..i holding m photons, each of them is on
+    pixel i with probability p_i = r_i / (r_1 + ... + r_i), independently, so the number on
+    pixel i is Binomial(m, p_i) and pixel i is hit unless it is 0. Every term of the
+    recursion is a probability (a binomial pmf, accurate to a few ulps for any m, see
+    :func:`_binomial_pmf`, times a probability) and nothing is subtracted, so each column
+    sums to one to rounding for any n_photons, and the derivatives in the ratios are exact.
+    Work grows as pixels * n_photons^2; memory as n_photons * 256 (the transfer table is
+    formed in blocks of 256 photon numbers).
     """
-    if n_photons > 1000:
-        raise ValueError(f"unequal split supports at most 1000 photon numbers, got {n_photons}")
-    ratios = jnp.asarray(ratios, dtype=jnp.float64)
-    pixels = ratios.shape[0]
-    m = np.arange(n_photons)
-    comb = np.exp(_log_comb(m[:, None].astype(float), m[None, :].astype(float)))
-    comb = jnp.asarray(np.where(m[None, :] <= m[:, None], comb, 0.0))  # comb[m, l] = C(m, l)
-    lag = m[:, None] - m[None, :]  # m - k
-
-    def add_pixel(coeffs, ratio):
-        # new[j, m] = old[j, m] + sum_{l>=1} C(m, l) r^l old[j-1, m-l]
-        powers = _powers(ratio, n_photons).at[0].set(0.0)  # r^l for l >= 1
-        shifted = jnp.concatenate([jnp.zeros((1, n_photons)), coeffs[:-1]], axis=0)
-        return coeffs + _binomial_convolution(shifted, powers, comb, lag), None
-
-    start = jnp.zeros((pixels + 1, n_photons)).at[0, 0].set(1.0)
-    # a scan over pixels keeps the compiled program one pixel long
-    return jax.lax.scan(add_pixel, start, ratios)[0]
-
-
-def _binomial_convolution(rows, powers, comb, lag):
-    """out[j, m] = sum_l C(m, l) powers[l] rows[j, m-l], as rows @ T^T with
-    T[m, k] = C(m, k) powers[m-k] for k <= m (``lag`` = m - k): one small matrix product."""
-    toeplitz = jnp.where(lag >= 0, powers[np.clip(lag, 0, None)], 0.0) * comb
-    return rows @ toeplitz.T
+    return _split_pixel_matrix(jnp.asarray(ratios, dtype=jnp.float64), int(n_photons))
 
 
 def click_dark_matrix(dark_probability, pixels: int):

@@ -5,6 +5,7 @@ import csv
 import json
 
 import numpy as np
+import pytest
 
 from povmfit.fitting.cli.main import main
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
@@ -138,3 +139,35 @@ def test_progress_bar_only_on_a_terminal():
             bar("bootstrap (POVM)", i + 1, 4)
     assert silent.getvalue() == ""
     assert "4/4" in shown.getvalue()
+
+
+# ----- the output set -------------------------------------------------------------------------
+def test_folder_with_other_results_is_refused_before_any_work(tmp_path, monkeypatch, capsys):
+    import povmfit.fitting.tomography.model_free as model_free
+
+    monkeypatch.setattr(model_free, "reconstruct_scan", lambda *a, **k: pytest.fail("work started"))
+    scan = tmp_path / "device.csv"
+    write_scan(scan)
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "report.html").write_text("another scan's report")
+    assert main(["reconstruct", str(scan), "-o", str(out), "--bootstrap", "0"]) == 2
+    line = capsys.readouterr().err.strip()
+    assert len(line.splitlines()) == 1 and str(out) in line and "--overwrite" in line
+    assert sorted(p.name for p in out.iterdir()) == ["report.html"]  # untouched
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["device.csv", "out"]  # no staging left
+
+
+def test_overwrite_replaces_the_whole_set_and_o_is_out(tmp_path, capsys):
+    scan = tmp_path / "device.csv"
+    write_scan(scan)
+    out = tmp_path / "out"
+    assert main(["reconstruct", str(scan), "-o", str(out), "--bootstrap", "0", "--quiet"]) == 0
+    first = (out / "povm.csv").read_text()
+    (out / "notes.txt").write_text("left from an earlier run")
+    assert main(["reconstruct", str(scan), "-o", str(out), "--bootstrap", "0", "--quiet"]) == 2
+    assert "already holds files" in capsys.readouterr().err
+    assert main(["reconstruct", str(scan), "-o", str(out), "--bootstrap", "0", "--quiet", "--overwrite"]) == 0
+    assert sorted(p.name for p in out.iterdir()) == ["povm.csv", "reconstruction.json", "wigner.csv"]
+    assert (out / "povm.csv").read_text() == first  # same scan and seed: the same set (deterministic estimator)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["device.csv", "out"]

@@ -363,7 +363,7 @@ def test_all_counts_in_outcome_zero_is_fitted_or_refused_with_one_line(tmp_path,
         assert code == 2 and _one_line(capsys.readouterr().err)
 
 
-@pytest.mark.slow  # about 13 minutes on a loaded two-core machine, most of it the model-free POVM
+@pytest.mark.slow  # about 4 minutes on a loaded two-core machine (258 s in bench_faults), most of it the model-free POVM
 def test_sixty_outcomes_are_fitted(tmp_path):
     # a 59-photon-resolving detector, loss only, probed by coherent light (Poisson thinning:
     # outcome law Poisson(eta * m), common practice); counts are the expectation, rounded

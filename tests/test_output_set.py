@@ -148,3 +148,42 @@ def test_json_never_holds_nan_or_infinity(tmp_path):
     text = (tmp_path / "x.json").read_text()
     assert "NaN" not in text and "Infinity" not in text
     assert json.loads(text) == {"a": None, "b": [None, None, 3], "c": [1.5, None], "d": {"e": True, "f": [1, None]}}
+
+
+def _small_reconstruction(tmp_path):
+    """Model-free reconstruction of a small invented scan of an on/off detector."""
+    from povmfit.fitting.data.scan import load_scan
+    from povmfit.fitting.tomography.model_free import reconstruct_scan
+
+    scan = tmp_path / "scan.csv"
+    scan.write_text("coherent_photons,thermal_photons,shots,count_0,count_1\n"
+                    "0,0,1000,998,2\n0.5,0,1000,742,258\n1,0,1000,551,449\n2,0,1000,301,699\n0.5,0.5,1000,702,298\n")
+    result = reconstruct_scan(load_scan(scan), bootstrap=0, seed=0, method="least_squares")
+    scan.unlink()
+    return result
+
+
+def test_reconstruction_is_written_as_a_set(tmp_path, monkeypatch):
+    import povmfit.fitting.tomography.scan_reconstruction as module
+
+    result = _small_reconstruction(tmp_path)
+    out = tmp_path / "rec"
+    out.mkdir()
+    (out / "povm.csv").write_text("an earlier run's table")
+    with pytest.raises(OutputError, match="already holds files"):
+        result.write(out)
+    assert (out / "povm.csv").read_text() == "an earlier run's table"
+
+    def failing(path, payload):
+        raise RuntimeError("disk full")  # the last file of the set fails
+
+    monkeypatch.setattr(module, "write_json", failing)
+    with pytest.raises(RuntimeError):
+        result.write(out, overwrite=True)
+    assert sorted(p.name for p in out.iterdir()) == ["povm.csv"] and (out / "povm.csv").read_text() == "an earlier run's table"
+    monkeypatch.undo()
+    files = result.write(out, overwrite=True)
+    assert sorted(p.name for p in out.iterdir()) == ["povm.csv", "reconstruction.json", "wigner.csv"]
+    assert {name: path.parent for name, path in files.items()} == dict.fromkeys(files, out)
+    assert json.loads(files["reconstruction"].read_text())["schema"] == module.RECONSTRUCTION_SCHEMA
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["rec"]  # no staging folder left

@@ -45,7 +45,7 @@ def _bisection_projection(v):
     return np.maximum(v - 0.5 * (lo + hi), 0)
 
 
-@pytest.mark.parametrize("n_outcomes, decimals", [(5, None), (20, None), (9, 0)])
+@pytest.mark.parametrize("n_outcomes, decimals", [(5, None), (20, None), (9, 0), (60, None), (60, 1), (300, None)])
 def test_simplex_projection_matches_bisection(n_outcomes, decimals):
     v = np.random.default_rng(0).normal(size=(n_outcomes, 40)) * 2
     if decimals is not None:  # many ties within a column

@@ -168,6 +168,46 @@ def test_split_pixels_match_monte_carlo():
         assert np.all(np.abs(freq - got[:, m]) < _five_sigma(got[:, m], shots)), m
 
 
+def _split_inclusion_exclusion(ratios, m, hit):
+    """P(exactly ``hit`` pixels hit | m photons) by inclusion-exclusion over pixel sets, in
+    mpmath at 60 digits: P(exactly the set S) = sum_{T in S} (-1)^(|S|-|T|) (sum_T r)^m."""
+    with mpmath.workdps(60):
+        r = [mpmath.mpf(x) for x in ratios]
+        total = mpmath.mpf(0)
+        for subset in itertools.combinations(range(len(r)), hit):
+            for size in range(hit + 1):
+                for inner in itertools.combinations(subset, size):
+                    total += (-1) ** (hit - size) * mpmath.fsum(r[i] for i in inner) ** m
+        return total
+
+
+def test_split_pixels_match_inclusion_exclusion_at_a_thousand_photons():
+    # Source: inclusion-exclusion closed form (textbook occupancy law), evaluated in mpmath at
+    # 60 digits; entries below 1e-280 (near the bottom of the double range, e.g. one pixel
+    # hit by 1000 photons, 9e-302) are compared absolutely
+    ratios = np.array([0.5, 0.3, 0.2])
+    got = np.asarray(split_pixel_matrix(ratios, 1001))
+    for m in (0, 1, 2, 10, 100, 1000):
+        expected = [float(_split_inclusion_exclusion(ratios, m, j)) for j in range(4)]
+        np.testing.assert_allclose(got[:, m], expected, rtol=1e-13, atol=1e-280)
+
+
+def test_split_derivative_matches_closed_form():
+    # Source: two pixels with ratios (r, 1-r): P(one hit | m) = r^m + (1-r)^m for m >= 1, so
+    # d/dr = m (r^(m-1) - (1-r)^(m-1)) (inclusion-exclusion, common practice)
+    import jax
+    import jax.numpy as jnp
+
+    r, n_photons = 0.35, 200
+    jac = np.asarray(jax.jacfwd(lambda x: split_pixel_matrix(jnp.stack([x, 1.0 - x]), n_photons))(r))
+    m = np.arange(1, n_photons)
+    expected = m * (r ** (m - 1) - (1 - r) ** (m - 1))
+    # r + (1 - r) rounds to 1 within an ulp, so derivatives of order m carry ~m ulps absolute
+    np.testing.assert_allclose(jac[1, 1:], expected, rtol=1e-11, atol=1e-14)
+    np.testing.assert_allclose(jac[2, 1:], -expected, rtol=1e-11, atol=1e-14)
+    assert np.all(jac[:, 0] == 0)
+
+
 # ----- pixel crosstalk -----------------------------------------------------------------------
 def _crosstalk_monte_carlo(x, pixels, fired, shots, rng):
     """The docstring's model, simulated: each initially fired pixel, with probability x, tries
@@ -371,31 +411,21 @@ def _catalogue_column_sums(n_photons, specs):
     return worst
 
 
-def _specs_at(n_photons):
-    from catalogue import SPECS
-
-    # unequal splits are defined up to 1000 photon numbers (split_pixel_matrix)
-    return [s for s in SPECS if "unequal_split" not in s or n_photons <= 1000]
-
-
 def test_catalogue_columns_sum_to_one_at_a_thousand_photons():
     # Source: probability law (columns of a POVM sum to one); common practice, no source.
-    # 1,001 photon numbers is where the former log-gamma loss stage drifted by 1.2e-12.
-    worst = _catalogue_column_sums(1001, _specs_at(1001))
-    assert max(worst.values()) < 1e-13, worst
+    # 1,001 photon numbers is where the former log-gamma loss stage drifted by 1.2e-12 and
+    # the former log-gamma unequal split by 3e-13.
+    from catalogue import SPECS
 
-
-@pytest.mark.xfail(strict=True, reason="split_pixel_matrix builds C(m, l) from log-gamma: columns drift by "
-                   "about 3e-13 at 1000 photon numbers (the loss stage no longer does)")
-def test_unequal_split_columns_sum_to_one_at_its_limit():
-    # Source: probability law; common practice, no source.
-    worst = _catalogue_column_sums(1000, [s for s in _specs_at(1000) if "unequal_split" in s])
+    worst = _catalogue_column_sums(1001, SPECS)
     assert max(worst.values()) < 1e-13, worst
 
 
 @pytest.mark.slow
 def test_catalogue_columns_sum_to_one_at_ten_thousand_photons():
     # Source: probability law; common practice, no source. One POVM per catalogue model at
-    # 10^4 photon numbers (unequal splits end at 1000: see the test above).
-    worst = _catalogue_column_sums(10_000, _specs_at(10_000))
+    # 10^4 photon numbers, unequal splits included.
+    from catalogue import SPECS
+
+    worst = _catalogue_column_sums(10_000, SPECS)
     assert max(worst.values()) < 1e-13, worst

@@ -1,9 +1,11 @@
 """``povmfit reconstruct``: model-free POVM and point-by-point Wigner values of a scan.
 
 A thin layer over :func:`povmfit.fitting.tomography.model_free.reconstruct_scan` (the same
-estimator the fit command's cross-check uses): checks the options, reconstructs, writes
-``povm.csv``, ``wigner.csv`` and ``reconstruction.json`` (each atomically) and prints the
-summary, or the key numbers as JSON with ``--json``.
+estimator the fit command's cross-check uses): checks the options and the output folder
+(refused before any work when it already holds files, unless ``--overwrite``), reconstructs,
+writes ``povm.csv``, ``wigner.csv`` and ``reconstruction.json`` as one set (a temporary
+sibling folder renamed into place) and prints the summary, or the key numbers as JSON with
+``--json``.
 """
 from __future__ import annotations
 
@@ -18,7 +20,8 @@ __all__ = ["register", "run"]
 
 EPILOG = """examples:
   povmfit reconstruct scan.csv                       # results in ./scan.povmfit/
-  povmfit reconstruct scan.csv --out rec/ --bootstrap 200 --seed 7 --json
+  povmfit reconstruct scan.csv -o rec/ --bootstrap 200 --seed 7 --json
+  povmfit reconstruct scan.csv -o rec/ --overwrite      # replace an earlier set in rec/
   povmfit reconstruct scan.csv --method least-squares  # the regularised least-squares estimator
 
 povm.csv lists every (photons, outcome) pair up to the photon-number cutoff; wigner.csv has
@@ -40,7 +43,10 @@ def register(subparsers):
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("scan", help="scan file (CSV or Parquet)")
-    parser.add_argument("--out", default=None, help="output folder (default: SCAN_STEM.povmfit/)")
+    parser.add_argument("-o", "--out", default=None, help="output folder (default: SCAN_STEM.povmfit/); refused "
+                        "when it already holds files, unless --overwrite")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace the whole --out folder if it already holds results")
     parser.add_argument("--bootstrap", type=int, default=RECONSTRUCTION_BOOTSTRAP, metavar="N",
                         help=f"parametric bootstrap resamples (default {RECONSTRUCTION_BOOTSTRAP}, as in `povmfit fit`)")
     parser.add_argument("--seed", type=int, default=0, help="seed for cross-validation folds and bootstrap (default 0)")
@@ -66,16 +72,18 @@ def _check_options(args) -> None:
 
 def run(args) -> int:
     _check_options(args)
+    from povmfit.fitting.data.files import check_output_folder
     from povmfit.fitting.data.scan import load_scan
     from povmfit.fitting.outputs.terminal import TerminalProgress
     from povmfit.fitting.tomography.model_free import reconstruct_scan
 
-    scan = load_scan(args.scan)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
+    check_output_folder(out_dir, args.overwrite)  # before any work
+    scan = load_scan(args.scan)
     progress = None if args.quiet or args.json else TerminalProgress()
     result = reconstruct_scan(scan, bootstrap=args.bootstrap, seed=args.seed, saturation=args.saturation,
                               progress=progress, method=args.method.replace("-", "_"))
-    files = result.write(out_dir)
+    files = result.write(out_dir, overwrite=args.overwrite)
     if args.json:
         print(json.dumps({**result.overview(), "outputs": {k: str(v) for k, v in files.items()}}, indent=2))
     elif not args.quiet:

@@ -36,6 +36,11 @@ class NotIdentifiable(PovmfitError):
     """The scan cannot determine the requested model (wrong outcomes, too few probe settings)."""
 
 
+class FitError(PovmfitError):
+    """A model cannot be fitted to the scan: its objective is not finite even at the start
+    (the message names the scan and the model)."""
+
+
 class OutputError(PovmfitError):
     """An output path cannot receive the results (not a folder, not writable, holds other
     results without ``overwrite``)."""

@@ -39,7 +39,7 @@ from scipy.special import chdtrc
 from povmfit.models import DetectorModel, parse_model_spec
 
 from povmfit.fitting.inference.candidates import candidate_models, family_compute_model, ranking_order
-from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
+from povmfit.fitting.data.errors import ArgumentError, FitError, NotIdentifiable
 from povmfit.fitting.display import format_number, format_p_value, html_block, html_table, text_table
 from povmfit.fitting.inference.fit import FitNotConverged, FitResult, fit_scan
 from povmfit.fitting.inference.objective import cell_residuals, compile_programs, fit_cutoff
@@ -281,7 +281,7 @@ def compare_models(
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", FitNotConverged)
                 fits[model.spec] = _fit_with_nested_start(scan, model, fits, calibration_uncertainty)
-        except NotIdentifiable as error:
+        except (NotIdentifiable, FitError) as error:  # this candidate is left out of the ranking
             skipped[model.spec] = str(error)
         if progress is not None:
             progress("model ranking", i + 1, len(ordered))

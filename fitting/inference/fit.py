@@ -28,7 +28,7 @@ from scipy.special import chdtrc, chdtri
 from povmfit.models import DetectorModel, dark_parameter_names
 
 from povmfit.fitting.data.arguments import as_model
-from povmfit.fitting.data.errors import ArgumentError, NotIdentifiable
+from povmfit.fitting.data.errors import ArgumentError, FitError, NotIdentifiable
 from povmfit.fitting.inference.bootstrap import bootstrap_problem
 from povmfit.fitting.inference.objective import FitProblem, fit_cutoff
 from povmfit.fitting.inference.result import FitNotConverged, FitResult
@@ -132,13 +132,17 @@ def _profile_interval(problem, x_hat, dev_min, index, se):
     deviance, minimised over the other parameters (``solve`` with this one fixed), rises by
     3.841 above its minimum ``dev_min``; cut at the parameter's bounds."""
     lower, upper = problem.lower, problem.upper
+    failed = []  # (value, message) of the refits that did not converge
 
     def profile_deviance(value):
         solution = solve(problem, x_hat, lower, upper, _PROFILE_TOLERANCE, fixed={index: value})
         if not solution.converged:
-            warnings.warn(f"profile of {problem.names[index]} at {value:.6g}: refit did not converge: "
-                          f"{solution.message}", FitNotConverged, stacklevel=4)
-        return solution.deviance
+            failed.append((value, solution.message))
+        return solution.deviance  # infinite where the objective is not finite: above any threshold
+
+    def excess(value):
+        rise = profile_deviance(value) - dev_min - CHI2_95
+        return rise if np.isfinite(rise) else 1e300  # keeps brentq's interpolation finite
 
     def edge(direction):
         bound = problem.bounds_list[index][0 if direction < 0 else 1]
@@ -154,9 +158,13 @@ def _profile_interval(problem, x_hat, dev_min, index, se):
             if far == bound:
                 return float(bound)
             near, step = far, step * 10
-        return float(optimize.brentq(lambda v: profile_deviance(v) - dev_min - CHI2_95, near, far, xtol=1e-12 + 1e-6 * step))
+        return float(optimize.brentq(excess, near, far, xtol=1e-12 + 1e-6 * step))
 
-    return edge(-1), edge(+1)
+    interval = edge(-1), edge(+1)
+    if failed:  # one line per parameter
+        warnings.warn(f"profile of {problem.names[index]}: {len(failed)} refit(s) did not converge, first at "
+                      f"{failed[0][0]:.6g}: {failed[0][1]}", FitNotConverged, stacklevel=3)
+    return interval
 
 
 def fit_scan(
@@ -225,8 +233,11 @@ def fit_scan(
 
     solution = solve(problem, x0, problem.lower, problem.upper, _TOLERANCES[intervals])
     x_hat = solution.x
+    if not np.isfinite(solution.deviance):  # not finite even at the start: no point to report
+        raise FitError(f"{scan.source}: cannot fit {model.spec}: {solution.message}")
     if not solution.converged:
-        warnings.warn(f"fit of {model.spec} did not converge: {solution.message}", FitNotConverged, stacklevel=2)
+        warnings.warn(f"{scan.source}: fit of {model.spec} did not converge: {solution.message}", FitNotConverged,
+                      stacklevel=2)
 
     deviance = problem.deviance(x_hat)
     deviance_data = deviance - (((x_hat[-1] - 1.0) / problem.width) ** 2 if problem.calibrated else 0.0)

@@ -15,8 +15,7 @@ Solver: accelerated projected gradient (FISTA, Beck & Teboulle, SIAM J. Imaging 
 (2009)) with gradient-based adaptive restart (O'Donoghue & Candes, Found. Comput. Math. 15,
 715 (2015)), diagonally preconditioned by the row sums of the Hessian (Gershgorin); the
 projection is the exact Euclidean projection of every photon-number column onto the
-probability simplex (Michelot's fixed-point algorithm, J. Optim. Theory Appl. 50, 195 (1986),
-or sorting for many outcomes).
+probability simplex (Michelot's fixed-point algorithm, J. Optim. Theory Appl. 50, 195 (1986)).
 F is stored in blocks: photon numbers are cut into strides of ``stride`` entries and every probe
 lives in the span of two consecutive strides that holds its window, so one gradient costs
 O(n_probes x window x n_outcomes) and memory O(n_probes x window), not the dense product.
@@ -46,7 +45,7 @@ __all__ = [
 BATCH = 5  # problems per compiled solve (one compiled shape; 5 = the default number of folds)
 SMALL_PROBLEM = 4096  # outcomes x photon numbers up to which a lone problem is padded to BATCH
 CHECK_EVERY = 25  # iterations between two evaluations of the stopping rule
-FEW_OUTCOMES = 12  # simplex projection by fixed passes up to this many outcomes, else by sorting
+FEW_OUTCOMES = 12  # simplex projection by fixed passes up to this many outcomes, else until nothing changes
 
 
 # ----- the problem in block form ---------------------------------------------------------
@@ -144,30 +143,38 @@ def project_columns_to_simplex(v):
     """Euclidean projection of every column of v (shape (..., n_outcomes, n_columns)) onto
     {x >= 0, sum x = 1}.
 
-    Up to :data:`FEW_OUTCOMES` outcomes, Michelot's algorithm: tau = (sum of the entries above
-    the previous tau - 1) / their number, started from all entries; tau rises and the set
-    shrinks until it stops changing, which takes at most n_outcomes - 1 updates, so that many
-    fixed passes give the exact projection (element-wise work only). More outcomes: the
-    sort-based algorithm (Duchi et al., ICML 2008).
+    Michelot's algorithm: tau = (sum of the entries above the previous tau - 1) / their
+    number, started from all entries; tau rises and the set shrinks until it stops changing,
+    which takes at most n_outcomes - 1 updates, and the final tau is the exact one (element-wise
+    work only). Up to :data:`FEW_OUTCOMES` outcomes that many fixed passes are made; with more,
+    the passes stop as soon as no column's tau changed (usually after a few: a sort-based
+    projection cost about 17 times as much per call for 60 outcomes, and gives the same tau up
+    to the order of summation).
     """
     k = v.shape[-2]
-    if k > FEW_OUTCOMES:
-        return _project_by_sorting(v)
     tau = (jnp.sum(v, axis=-2, keepdims=True) - 1.0) / k
-    for _ in range(k - 1):
-        above = v > tau
-        tau = (jnp.sum(jnp.where(above, v, 0.0), axis=-2, keepdims=True) - 1.0) / jnp.sum(above, axis=-2, keepdims=True)
+    if k <= FEW_OUTCOMES:
+        for _ in range(k - 1):
+            tau = _michelot_update(v, tau)
+        return jnp.maximum(v - tau, 0.0)
+
+    def keep_going(state):
+        passes, changed, _ = state
+        return changed & (passes < k - 1)
+
+    def one_pass(state):
+        passes, _, tau = state
+        new = _michelot_update(v, tau)
+        return passes + 1, jnp.any(new != tau), new
+
+    _, _, tau = jax.lax.while_loop(keep_going, one_pass, (0, jnp.asarray(True), tau))
     return jnp.maximum(v - tau, 0.0)
 
 
-def _project_by_sorting(v):
-    k = v.shape[-2]
-    u = -jnp.sort(-v, axis=-2)
-    cumulative = jnp.cumsum(u, axis=-2) - 1.0
-    ranks = jnp.arange(1, k + 1, dtype=v.dtype)[:, None]
-    active = jnp.sum(u - cumulative / ranks > 0, axis=-2, keepdims=True)
-    tau = jnp.take_along_axis(cumulative, active - 1, axis=-2) / active
-    return jnp.maximum(v - tau, 0.0)
+def _michelot_update(v, tau):
+    """One pass of Michelot's algorithm: tau from the entries of each column above ``tau``."""
+    above = v > tau
+    return (jnp.sum(jnp.where(above, v, 0.0), axis=-2, keepdims=True) - 1.0) / jnp.sum(above, axis=-2, keepdims=True)
 
 
 def _span_indices(n_blocks, stride, span):

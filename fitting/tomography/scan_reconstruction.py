@@ -4,7 +4,7 @@ phase-insensitivity test, and the scan they came from.
 
 Files written by :meth:`ScanReconstruction.write`: ``povm.csv`` and ``wigner.csv`` (the long
 tables of :mod:`povmfit.fitting.tomography.tables`) and ``reconstruction.json``
-(:meth:`ScanReconstruction.to_dict`), each atomically.
+(:meth:`ScanReconstruction.to_dict`), as one set renamed into place when complete.
 """
 from __future__ import annotations
 
@@ -14,7 +14,7 @@ from typing import TYPE_CHECKING
 
 import numpy as np
 
-from povmfit.fitting.data.files import json_safe, write_json
+from povmfit.fitting.data.files import json_safe, output_set, write_json
 from povmfit.fitting.display import format_number, format_uncertain, html_block, html_table, text_table
 from povmfit.fitting.tomography.tables import POVM_COLUMNS, povm_rows, write_reconstruction_csvs
 
@@ -198,11 +198,17 @@ class ScanReconstruction:
                 f"wigner_points={points})")
 
     # ----- files --------------------------------------------------------------------------------
-    def write(self, out_dir) -> dict[str, Path]:
-        """Write povm.csv, wigner.csv and reconstruction.json into ``out_dir`` (created if
-        needed), each atomically; returns {"povm": path, "wigner": path, "reconstruction": path}."""
+    def write(self, out_dir, overwrite: bool = False) -> dict[str, Path]:
+        """Write povm.csv, wigner.csv and reconstruction.json as one set (``data.files.output_set``:
+        a temporary sibling folder renamed to ``out_dir`` when complete); returns
+        {"povm": path, "wigner": path, "reconstruction": path} inside ``out_dir``.
+
+        ``out_dir`` must be absent or an empty folder unless ``overwrite``, which replaces the
+        whole folder (OutputError otherwise, before anything is written).
+        """
         out_dir = Path(out_dir)
-        files = write_reconstruction_csvs(out_dir, self.reconstruction, self.pointwise, self.smoothed)
-        files["reconstruction"] = out_dir / "reconstruction.json"
-        write_json(files["reconstruction"], self.to_dict())
-        return files
+        with output_set(out_dir, overwrite) as staging:
+            files = write_reconstruction_csvs(staging, self.reconstruction, self.pointwise, self.smoothed)
+            files["reconstruction"] = staging / "reconstruction.json"
+            write_json(files["reconstruction"], self.to_dict())
+        return {name: out_dir / path.name for name, path in files.items()}

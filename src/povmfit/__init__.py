@@ -65,6 +65,7 @@ _PUBLIC = {
     "DetectorFileError": "povmfit.fitting.data.errors",
     "StateError": "povmfit.fitting.data.errors",
     "NotIdentifiable": "povmfit.fitting.data.errors",
+    "FitError": "povmfit.fitting.data.errors",
     "FitNotConverged": "povmfit.fitting.inference.fit",
     "tally_pulse_heights": "povmfit.fitting.workflow.tally",
     "tally_click_log": "povmfit.fitting.workflow.tally",
