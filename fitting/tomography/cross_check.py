@@ -13,7 +13,11 @@ include its bias, so the chi-square is a summary, not an exact test.
 Calibration: when the reconstructions of scans simulated from the model are given
 (``null_draws``, what the whole job already computes), the POVM statistic's distribution
 under the model is taken from them: each simulated reconstruction is scored exactly like the
-data's (against the mean of the other simulations), and the p-value comes from a scaled
+data's (against the mean and spread of the other simulations, so that its own deviation does
+not shrink its score; the spread of an entry is raised to its mean over five neighbouring
+photon numbers where that is larger, since entries near a constraint make rare large
+excursions that 20 simulations show at some photon numbers only), and the p-value comes
+from a scaled
 chi-square a chi2_nu with the simulated statistics' mean and variance (a nu = mean,
 2 a^2 nu = variance; Satterthwaite, Biometrics Bull. 2, 110 (1946)), so correlations,
 smoothing and constraints are accounted for. The rank p-value among the simulations is
@@ -27,6 +31,7 @@ from __future__ import annotations
 
 
 import numpy as np
+from scipy.ndimage import uniform_filter1d
 from scipy.special import chdtrc
 
 from povmfit.models import probe_distributions_numpy
@@ -34,11 +39,12 @@ from povmfit.models import probe_distributions_numpy
 from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.pointwise_wigner import _solve, thermal_design, wigner_from_p
 
-__all__ = ["cross_check", "model_pointwise_wigner", "CONSISTENT_LEVEL"]
+__all__ = ["cross_check", "model_pointwise_wigner", "null_statistics", "calibrated_scale", "CONSISTENT_LEVEL"]
 
 CONSISTENT_LEVEL = 0.01  # verdict "tension" when a p-value falls below this level
 _ERROR_FLOOR = 1e-9
 POVM_TOLERANCE = 1e-3  # absolute: smaller model-vs-reconstruction differences count as agreement
+POOLED_PHOTONS = 5  # calibrated comparison: spread pooled over this many neighbouring photon numbers
 
 
 def model_pointwise_wigner(model_theta, pointwise, coherent, thermal) -> np.ndarray:
@@ -73,13 +79,22 @@ def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr,
     # better than about 3/N (the 95 % upper limit after zero events, "rule of three"), and
     # entries pinned at 0 or 1 by the constraints have no bootstrap spread at all; differences
     # below POVM_TOLERANCE are treated as agreement.
-    floor = np.maximum(3.0 / np.maximum(reconstruction.probe_weight[photons], 1.0), POVM_TOLERANCE)
-    scale = np.maximum(sigma, floor[None, :])
+    floor = np.maximum(3.0 / np.maximum(reconstruction.probe_weight[photons], 1.0), POVM_TOLERANCE)[None, :]
+    calibrate = null_draws is not None and photons.size > 0 and len(null_draws) >= 3
+    if calibrate:
+        draws = np.asarray(null_draws, dtype=float)[:, :, photons]
+        spread = draws.var(axis=0, ddof=1)
+        # the part of the data's variance that is not the simulations' spread (the fit's own
+        # uncertainty, the reconstruction's errors), kept in the simulations' scores
+        other_variance = np.maximum(sigma**2 - spread, 0.0)
+        scale = calibrated_scale(spread, other_variance, floor)
+    else:
+        scale = np.maximum(sigma, floor)
     z = (model_theta[:, photons] - reconstruction.theta[:, photons]) / scale
     out = _summary(z[:-1], z[:-1].size)
-    if null_draws is not None and z.size:
+    if calibrate:
         out["chi_square_nominal_p_value"] = out["p_value"]
-        out.update(_calibrated(float(np.sum(z[:-1] ** 2)), np.asarray(null_draws, dtype=float)[:, :, photons], scale))
+        out.update(_calibrated(float(np.sum(z[:-1] ** 2)), draws, floor, other_variance))
     if z.size:
         # the last outcome is fixed by completeness; it is left out of the statistic and the search
         k, j = np.unravel_index(int(np.argmax(np.abs(z[:-1]))), z[:-1].shape)
@@ -89,22 +104,46 @@ def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr,
     return out
 
 
-def null_statistics(draws, scale) -> np.ndarray:
+def calibrated_scale(variance, other_variance, floor, pooled: int = POOLED_PHOTONS):
+    """z denominators of the calibrated comparison: (..., K, m).
+
+    ``variance`` (..., K, m) is the simulated reconstructions' variance on the m compared
+    photon numbers; it is raised to its mean over ``pooled`` neighbouring compared photon numbers where
+    that is larger (entries near a constraint make rare large excursions, at neighbouring
+    photon numbers alike, which a few simulations show at some of them only), combined in
+    quadrature with ``other_variance`` and kept at least ``floor``.
+    """
+    variance = np.asarray(variance, dtype=float)
+    if pooled > 1:
+        variance = np.maximum(variance, uniform_filter1d(variance, pooled, axis=-1, mode="nearest"))
+    return np.maximum(np.sqrt(variance + other_variance), floor)
+
+
+def null_statistics(draws, floor, other_variance=0.0, pooled: int = POOLED_PHOTONS) -> np.ndarray:
     """The POVM statistic of each simulated reconstruction under the model: (n_simulations,).
 
-    ``draws`` (S, K, m) are the simulated reconstructions on the compared photon numbers,
-    ``scale`` (K, m) the data's z denominators; simulation s is compared with the mean of the
-    other S - 1 (it is independent of them, as the data's reconstruction is of all S).
+    ``draws`` (S, K, m) are the simulated reconstructions on the compared photon numbers
+    (S >= 3). Simulation s is scored exactly as the data's reconstruction is: against the mean
+    of the other S - 1 (it is independent of them, as the data's reconstruction is of all S),
+    in units of :func:`calibrated_scale` of their variance (ddof 1). Its own deviation must
+    not enter its scale: an estimator with rare large excursions would otherwise score them
+    at most sqrt(S - 1) standard deviations, and the calibration would miss the tail that the
+    data's score sees in full.
     """
     s = draws.shape[0]
-    others = (draws.sum(axis=0)[None] - draws) / (s - 1)
-    z = (others - draws) / scale[None]
+    mean = draws.mean(axis=0)
+    deviation = draws - mean[None]
+    others_mean = mean[None] - deviation / (s - 1)
+    # sum of squares of the other S - 1 about their own mean, from the deviations about all S
+    others_squares = np.sum(deviation**2, axis=0)[None] - deviation**2 * s / (s - 1)
+    others_variance = np.maximum(others_squares, 0.0) / (s - 2)
+    z = (others_mean - draws) / calibrated_scale(others_variance, other_variance, floor, pooled)
     return np.sum(z[:, :-1] ** 2, axis=(1, 2))
 
 
-def _calibrated(statistic: float, draws, scale) -> dict:
+def _calibrated(statistic: float, draws, floor, other_variance) -> dict:
     """p-values of ``statistic`` under the distribution simulated from the model."""
-    null = null_statistics(draws, scale)
+    null = null_statistics(draws, floor, other_variance)
     mean, variance = float(null.mean()), float(null.var(ddof=1))
     out = {"null": {
         "simulations": int(null.size), "mean": mean, "sd": float(np.sqrt(variance)),
