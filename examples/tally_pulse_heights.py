@@ -79,8 +79,8 @@ def main() -> None:
         efficiency = tally.parameters["efficiency"]
         print(f"tally efficiency {efficiency['value']:.4f} ± {efficiency['stderr']:.4f} (true {EFFICIENCY})")
         fit = povmfit.fit(tally.scan, f"pnr:{tally.max_outcome}", readout=files["readout"])
-        print(f"fit efficiency {fit.values['efficiency']:.4f} ± {fit.stderr['efficiency']:.4f} (true {EFFICIENCY}), "
-              f"through the fixed readout stage; deviance {fit.deviance:.1f} on {fit.dof} dof")
+        print(f"fit efficiency {fit.values['efficiency']:.4f} ± {fit.stderr['efficiency']:.4f} (true {EFFICIENCY})")
+        print(f"  (through readout.json as a fixed readout stage; deviance {fit.deviance:.1f} on {fit.dof} dof)")
 
 
 if __name__ == "__main__":

@@ -274,7 +274,7 @@ def test_null_statistics_follow_the_f_distribution_for_independent_gaussians():
     rng = np.random.default_rng(0)
     s = 400
     draws = rng.normal(size=(s, 4, 10))
-    statistics = null_statistics(draws, np.full((4, 10), 1e-12), pooled=1)  # no pooling: the plain F case
+    statistics = null_statistics(draws, np.full((4, 10), 1e-12))  # the plain F case
     assert statistics.mean() == pytest.approx(30 * s / (s - 1) * stats.f.mean(1, s - 2), abs=1.6)
 
 

@@ -4,9 +4,10 @@ Modules:
     model_free: :func:`reconstruct_scan`, the one entry point shared by the reconstruct verb
         and the whole job, and its picklable parts for a worker process.
     scan_reconstruction: :class:`ScanReconstruction`, the frozen result (summary, tables, files).
-    reconstruct: the diagonal POVM, by maximum likelihood (default; solver in
-        likelihood_solver: penalised EM accelerated by SQUAREM) or by regularised constrained
-        least squares (solver in povm_solver).
+    reconstruct: the diagonal POVM, by regularised constrained least squares (default; solver
+        in povm_solver) or by penalised maximum likelihood (solver in likelihood_solver: a
+        primal-dual interior-point method for dense problems up to 200 photon numbers, EM
+        accelerated by SQUAREM beyond).
     pointwise_wigner: Wigner values point by point from displaced-thermal probes, the smoothed
         curve and the phase-insensitivity test.
     cross_check: a fitted model against the reconstructions.

@@ -14,10 +14,7 @@ Calibration: when the reconstructions of scans simulated from the model are give
 (``null_draws``, what the whole job already computes), the POVM statistic's distribution
 under the model is taken from them: each simulated reconstruction is scored exactly like the
 data's (against the mean and spread of the other simulations, so that its own deviation does
-not shrink its score; the spread of an entry is raised to its mean over five neighbouring
-photon numbers where that is larger, since entries near a constraint make rare large
-excursions that 20 simulations show at some photon numbers only), and the p-value comes
-from a scaled
+not shrink its score), and the p-value comes from a scaled
 chi-square a chi2_nu with the simulated statistics' mean and variance (a nu = mean,
 2 a^2 nu = variance; Satterthwaite, Biometrics Bull. 2, 110 (1946)), so correlations,
 smoothing and constraints are accounted for. The rank p-value among the simulations is
@@ -31,7 +28,6 @@ from __future__ import annotations
 
 
 import numpy as np
-from scipy.ndimage import uniform_filter1d
 from scipy.special import chdtrc
 
 from povmfit.models import probe_distributions_numpy
@@ -44,7 +40,6 @@ __all__ = ["cross_check", "model_pointwise_wigner", "null_statistics", "calibrat
 CONSISTENT_LEVEL = 0.01  # verdict "tension" when a p-value falls below this level
 _ERROR_FLOOR = 1e-9
 POVM_TOLERANCE = 1e-3  # absolute: smaller model-vs-reconstruction differences count as agreement
-POOLED_PHOTONS = 5  # calibrated comparison: spread pooled over this many neighbouring photon numbers
 
 
 def model_pointwise_wigner(model_theta, pointwise, coherent, thermal) -> np.ndarray:
@@ -104,22 +99,19 @@ def _povm_part(model_theta, model_stderr, reconstruction, reconstruction_stderr,
     return out
 
 
-def calibrated_scale(variance, other_variance, floor, pooled: int = POOLED_PHOTONS):
+def calibrated_scale(variance, other_variance, floor):
     """z denominators of the calibrated comparison: (..., K, m).
 
     ``variance`` (..., K, m) is the simulated reconstructions' variance on the m compared
-    photon numbers; it is raised to its mean over ``pooled`` neighbouring compared photon numbers where
-    that is larger (entries near a constraint make rare large excursions, at neighbouring
-    photon numbers alike, which a few simulations show at some of them only), combined in
-    quadrature with ``other_variance`` and kept at least ``floor``.
+    photon numbers, combined in quadrature with ``other_variance`` and kept at least ``floor``.
+    It is not pooled over neighbouring photon numbers: an entry the model pins (no spread in
+    its simulations, such as the no-click probability at zero photons of a model without dark
+    counts) is where a wrong model shows most plainly.
     """
-    variance = np.asarray(variance, dtype=float)
-    if pooled > 1:
-        variance = np.maximum(variance, uniform_filter1d(variance, pooled, axis=-1, mode="nearest"))
-    return np.maximum(np.sqrt(variance + other_variance), floor)
+    return np.maximum(np.sqrt(np.asarray(variance, dtype=float) + other_variance), floor)
 
 
-def null_statistics(draws, floor, other_variance=0.0, pooled: int = POOLED_PHOTONS) -> np.ndarray:
+def null_statistics(draws, floor, other_variance=0.0) -> np.ndarray:
     """The POVM statistic of each simulated reconstruction under the model: (n_simulations,).
 
     ``draws`` (S, K, m) are the simulated reconstructions on the compared photon numbers
@@ -137,7 +129,7 @@ def null_statistics(draws, floor, other_variance=0.0, pooled: int = POOLED_PHOTO
     # sum of squares of the other S - 1 about their own mean, from the deviations about all S
     others_squares = np.sum(deviation**2, axis=0)[None] - deviation**2 * s / (s - 1)
     others_variance = np.maximum(others_squares, 0.0) / (s - 2)
-    z = (others_mean - draws) / calibrated_scale(others_variance, other_variance, floor, pooled)
+    z = (others_mean - draws) / calibrated_scale(others_variance, other_variance, floor)
     return np.sum(z[:, :-1] ** 2, axis=(1, 2))
 
 
