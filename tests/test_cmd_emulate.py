@@ -180,11 +180,13 @@ def test_simulate_reads_a_probe_file(detector, tmp_path):
     assert load_scan(target).n_probes == 3
 
 
-@pytest.mark.parametrize("grid", ["coherent=1:2", "photons=1,2", "coherent=-1", "coherent=1;coherent=2", ""])
+@pytest.mark.parametrize("grid", ["coherent=1:2", "photons=1,2", "coherent=-1", "coherent=1;coherent=2", "",
+                                  "missing-plan.csv"])
 def test_simulate_refuses_bad_grids(detector, tmp_path, grid):
     target = tmp_path / "s.csv"
     code, _, err = _run(["simulate", detector, "--probes", grid, "--shots", 10, "-o", target])
     assert code == 2 and not target.exists() and err.count("\n") == 1
+    assert ("no such probe file" in err) == grid.endswith(".csv")
 
 
 def test_help_texts_carry_examples():

@@ -162,6 +162,8 @@ def simulate_scan(detector, probes, shots=None, seed=None, povm_source: str = "a
         coherent, thermal, labels, file_shots = load_probe_file(probes, with_shots=True)
         if file_shots is not None and shots is not None:
             raise ArgumentError(f"shots: the probe file {probes} gives the shots of every probe; leave shots out")
+    elif isinstance(probes, Path) or (isinstance(probes, str) and Path(probes).suffix.lower() == ".csv"):
+        raise ArgumentError(f"probes {str(probes)!r}: no such probe file")
     elif isinstance(probes, str):
         coherent, thermal = parse_probe_grid(probes)
     else:
