@@ -37,8 +37,6 @@ def register(subparsers) -> argparse.ArgumentParser:
         "efficiency), set the thresholds between peaks at minimum misassignment, and write the scan and "
         "readout.json (the misassignment matrix and the peak parameters).",
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    heights.add_argument("probes", metavar="PROBES", help="the PROBES file (CSV)")
-    heights.add_argument("-o", "--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
     heights.add_argument("--max-photons", type=int, default=None, metavar="K",
                          help="largest outcome, meaning K or more (default: from the probes and the separable peaks)")
     heights.add_argument("--quadratic", action="store_true", help="fit a small quadratic term in the peak positions")
@@ -51,13 +49,13 @@ def register(subparsers) -> argparse.ArgumentParser:
         description="Count every probe's triggers per click pattern; write the click-number scan, the pattern "
         "layout (SCAN_STEM.patterns.csv) and per-channel click probabilities (SCAN_STEM.channels.csv).",
         epilog=EPILOG, formatter_class=argparse.RawDescriptionHelpFormatter)
-    click.add_argument("probes", metavar="PROBES", help="the PROBES file (CSV)")
-    click.add_argument("-o", "--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
     click.add_argument("--channels", type=int, default=None, metavar="N",
                        help="number of channels (default: the pattern width or the highest channel that fired)")
     click.add_argument("--log-format", default="auto", choices=("auto", "bitmask", "pattern"),
                        help="how text logs are read (default auto: 0/1 strings of the first line's width are patterns)")
     for sub in (heights, click):
+        sub.add_argument("probes", metavar="PROBES", help="the PROBES file (CSV)")
+        sub.add_argument("-o", "--out", required=True, metavar="SCAN", help="scan file to write (.csv or .parquet)")
         sub.add_argument("--json", action="store_true", help="print a machine-readable summary on stdout")
         sub.add_argument("--quiet", action="store_true", help="print nothing but errors")
     return parser

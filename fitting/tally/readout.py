@@ -32,15 +32,13 @@ from os import PathLike
 import jax.numpy as jnp
 import numpy as np
 
-from povmfit.models import READOUT_COLUMN_TOLERANCE, check_readout_matrix, fixed_readout_columns
+from povmfit.models import check_readout_matrix, fixed_readout_columns
 
 from povmfit.fitting.data.errors import ArgumentError, InputFileError
 
-__all__ = ["SCHEMA", "load_readout", "apply_readout", "extend_columns", "COLUMN_TOLERANCE", "resolve_readout",
-           "check_readout_outcomes"]
+__all__ = ["SCHEMA", "load_readout", "apply_readout", "resolve_readout", "check_readout_outcomes"]
 
 SCHEMA = "povmfit.readout/1"
-COLUMN_TOLERANCE = READOUT_COLUMN_TOLERANCE  # columns must sum to 1 within this
 
 
 def load_readout(path) -> np.ndarray:
@@ -49,12 +47,20 @@ def load_readout(path) -> np.ndarray:
     Refused with one line naming the file: unreadable JSON, another schema, a matrix that is
     not a rectangle of finite numbers in [0, 1] with at least K+1 >= 2 rows and K+1 columns,
     or a column that does not sum to 1 (within 1e-9)."""
-    name = str(path)
+    return _parse_readout(_read_bytes(path), str(path))
+
+
+def _read_bytes(path) -> bytes:
     try:
-        with open(path, encoding="utf-8") as handle:
-            record = json.load(handle)
+        with open(path, "rb") as handle:
+            return handle.read()
     except OSError as error:
-        raise InputFileError(f"{name}: cannot read ({error.strerror or error})") from None
+        raise InputFileError(f"{path}: cannot read ({error.strerror or error})") from None
+
+
+def _parse_readout(content: bytes, name: str) -> np.ndarray:
+    try:
+        record = json.loads(content.decode("utf-8"))
     except (json.JSONDecodeError, UnicodeDecodeError) as error:
         raise InputFileError(f"{name}: not a JSON file ({error})") from None
     if not isinstance(record, dict) or record.get("schema") != SCHEMA:
@@ -77,12 +83,6 @@ def load_readout(path) -> np.ndarray:
     return matrix
 
 
-def extend_columns(matrix: np.ndarray, n_columns: int) -> np.ndarray:
-    """``matrix`` cut or padded to ``n_columns`` columns; padded columns report outcome K
-    (the model's fixed readout stage uses the same rule)."""
-    return fixed_readout_columns(matrix, n_columns)
-
-
 def resolve_readout(readout) -> tuple[np.ndarray | None, object]:
     """(matrix M[k, m], provenance record) of a ``readout=`` argument.
 
@@ -93,13 +93,9 @@ def resolve_readout(readout) -> tuple[np.ndarray | None, object]:
     if readout is None:
         return None, None
     if isinstance(readout, (str, PathLike)):
-        matrix = load_readout(readout)
-        try:
-            with open(readout, "rb") as handle:
-                digest = hashlib.sha256(handle.read()).hexdigest()
-        except OSError as error:
-            raise InputFileError(f"{readout}: cannot read ({error.strerror or error})") from None
-        return matrix, {"file": os.fspath(readout), "sha256": digest}
+        content = _read_bytes(readout)  # read once: the digest is of the bytes parsed
+        return _parse_readout(content, str(readout)), {"file": os.fspath(readout),
+                                                      "sha256": hashlib.sha256(content).hexdigest()}
     try:
         return check_readout_matrix(readout), "array"
     except (TypeError, ValueError) as error:
@@ -130,7 +126,7 @@ def apply_readout(theta, matrix):
         ``theta_out[k, n] = sum_m M[k, m] theta[m, n]``, shape (K+1, n_photons).
     """
     rows = int(np.shape(theta)[0])
-    return jnp.asarray(extend_columns(matrix, rows)) @ jnp.asarray(theta)
+    return jnp.asarray(fixed_readout_columns(matrix, rows)) @ jnp.asarray(theta)
 
 
 def parameter_entry(value: float, stderr: float, lower: float = -math.inf, upper: float = math.inf) -> dict:

@@ -149,21 +149,26 @@ class MeasurementPlan:
 
 
 # ----- arguments --------------------------------------------------------------------------------
+def _named_items(given, separator: str, argument: str, form: str) -> list[tuple]:
+    """(name, value text) pairs of a dict, a comma-separated string or a list of strings
+    ``NAME<separator>VALUE``; a part without the separator is refused naming ``form``."""
+    if isinstance(given, dict):
+        return list(given.items())
+    parts = str(given).split(",") if isinstance(given, str) else list(given)
+    items = []
+    for part in (str(p).strip() for p in parts):
+        name, sep, value = part.partition(separator)
+        if not sep:
+            raise ArgumentError(f"{argument}: expected {form}, got {part!r}")
+        items.append((name.strip(), value.strip()))
+    return items
+
+
 def parse_targets(targets) -> dict:
     """``{"efficiency": 0.002}``, ``"efficiency:0.002,vacuum_click_probability:1e-4"`` or a list
     of ``"FIGURE:STDERR"`` strings -> {figure: stderr}."""
-    if isinstance(targets, dict):
-        items = list(targets.items())
-    else:
-        parts = targets.split(",") if isinstance(targets, str) else list(targets)
-        items = []
-        for part in parts:
-            name, sep, value = str(part).strip().partition(":")
-            if not sep:
-                raise ArgumentError(f"targets: expected FIGURE:STDERR, got {part!r}")
-            items.append((name.strip(), value.strip()))
     out = {}
-    for name, value in items:
+    for name, value in _named_items(targets, ":", "targets", "FIGURE:STDERR"):
         try:
             value = float(value)
         except (TypeError, ValueError):
@@ -182,17 +187,10 @@ def parse_guess(guess) -> dict:
     """``{"efficiency": 0.8}`` or ``"efficiency=0.8,dark=1e-3"`` -> {name: value}."""
     if guess is None:
         return {}
-    if isinstance(guess, dict):
-        items = list(guess.items())
-    else:
-        items = []
-        for part in filter(None, (p.strip() for p in str(guess).split(","))):
-            name, sep, value = part.partition("=")
-            if not sep:
-                raise ArgumentError(f"guess: expected NAME=VALUE, got {part!r}")
-            items.append((name.strip(), value.strip()))
     out = {}
-    for name, value in items:
+    if isinstance(guess, str):  # empty parts ("a=1,,b=2", a trailing comma) are allowed here
+        guess = [part for part in guess.split(",") if part.strip()]
+    for name, value in _named_items(guess, "=", "guess", "NAME=VALUE"):
         try:
             out[str(name)] = float(value)
         except (TypeError, ValueError):
