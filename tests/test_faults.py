@@ -198,6 +198,24 @@ def test_ctrl_c_during_fit_prints_one_line_exits_130_and_leaves_nothing(tmp_path
     assert sorted(p.name for p in work.iterdir()) == ["argparse.py", "numpy.py", "scipy.py"]
 
 
+@pytest.mark.parametrize("delay", [0.3, 0.8])
+def test_ctrl_c_while_the_libraries_load_still_stops_the_command(tmp_path, delay):
+    # Python reports an interrupt raised inside a garbage-collection callback (JAX registers
+    # one) as ignored; it is delivered again, so Ctrl-C stops the command at any moment.
+    scan = _scan(tmp_path)
+    tag = uuid.uuid4().hex
+    run = subprocess.Popen([POVMFIT, "fit", str(scan), *FIT, "--jobs", "2", "--bootstrap", "20000",
+                            "--out", str(tmp_path / "out")],
+                           env=_env(tmp_path, tag), stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    time.sleep(delay)
+    run.send_signal(signal.SIGINT)
+    _, err = run.communicate(timeout=120)
+    assert run.returncode == 130, err
+    assert "interrupted" in _one_line(err)
+    assert _no_stray_processes(tag)
+    assert not (tmp_path / "out").exists()
+
+
 def test_sigkill_part_way_leaves_no_partial_output_and_a_rerun_works(tmp_path, capsys):
     scan = _scan(tmp_path)
     out = tmp_path / "out"
@@ -217,7 +235,7 @@ def test_sigkill_part_way_leaves_no_partial_output_and_a_rerun_works(tmp_path, c
 
 # ----- the worker process ---------------------------------------------------------------------
 def test_worker_never_imports_modules_from_the_working_folder(tmp_path, monkeypatch):
-    from povmfit.fitting.workflow.characterise import _executor, _submit
+    from povmfit.fitting.workflow.worker import submit as _submit, worker_pool as _executor
 
     work = _hostile_folder(tmp_path)
     monkeypatch.chdir(work)
@@ -231,7 +249,7 @@ def test_worker_never_imports_modules_from_the_working_folder(tmp_path, monkeypa
 
 def test_hung_worker_is_stopped_with_one_line():
     from povmfit.fitting.data.errors import WorkerError
-    from povmfit.fitting.workflow.characterise import _executor, _submit
+    from povmfit.fitting.workflow.worker import submit as _submit, worker_pool as _executor
 
     started = time.monotonic()
     with pytest.raises(WorkerError, match="no answer .* within 0.5 s") as caught:
@@ -242,7 +260,7 @@ def test_hung_worker_is_stopped_with_one_line():
 
 def test_dead_worker_gives_one_line():
     from povmfit.fitting.data.errors import WorkerError
-    from povmfit.fitting.workflow.characterise import _executor, _submit
+    from povmfit.fitting.workflow.worker import submit as _submit, worker_pool as _executor
 
     with pytest.raises(WorkerError, match="ended unexpectedly"):
         with _executor(2) as pool:

@@ -105,3 +105,27 @@ def test_the_worker_entry_module_does_not_load_jax():
             "print(sorted(m for m in ('jax', 'scipy', 'pandas') if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
     assert out.strip() == "[]"
+
+
+def test_simulated_scans_shared_out_in_parts_join_into_the_whole_set(scan, here):
+    # Source: the whole set computed at once (common practice, no source). Each simulated
+    # scan has its own seed, so the whole job may reconstruct half of them in the worker.
+    from povmfit.fitting.tomography.model_free import UnderModel
+
+    reconstruction, _ = here
+    q = scan.counts / scan.shots[:, None]
+    whole = reconstructions_under_model(scan, q, reconstruction, SEED, 6)
+    joined = UnderModel.joined([reconstructions_under_model(scan, q, reconstruction, SEED, 4),
+                                reconstructions_under_model(scan, q, reconstruction, SEED, 2, first=4)])
+    np.testing.assert_allclose(joined.draws, whole.draws, rtol=0, atol=1e-10)
+    np.testing.assert_allclose(joined.spread, whole.spread, rtol=0, atol=1e-10)
+    assert not np.allclose(whole.draws[0], whole.draws[1])  # the scans differ from one another
+
+
+def test_the_library_reconstruct_takes_the_estimator(scan):
+    # Source: the tomography entry point with the same keyword (the API is a thin layer).
+    import povmfit
+
+    result = povmfit.reconstruct(scan, bootstrap=0, method="likelihood")
+    assert result.reconstruction.method == "likelihood"
+    assert povmfit.reconstruct(scan, bootstrap=0).reconstruction.method == "least_squares"  # the default

@@ -41,28 +41,36 @@ def fit_defaults() -> argparse.Namespace:
 
 
 def run(args) -> int:
-    from povmfit.fitting.cli.fit import characterise_for_cli, print_summary
+    from povmfit.fitting.cli.fit import job_worker, print_summary
     from povmfit.fitting.data.files import check_output_folder
-    from povmfit.fitting.data.scan import load_scan
-    from povmfit.fitting.outputs.files import write_characterisation
 
     out_dir = Path(args.out)
     check_output_folder(out_dir, args.overwrite)  # before any work
-    scan_copy = out_dir / "demo_scan.csv"  # written with the other outputs, as one set
-    scan = dataclasses.replace(load_scan(demo_scan_path()), source=str(scan_copy))
     fit_args = fit_defaults()  # the options of `povmfit fit` at their defaults (seed, bootstrap, jobs, ...)
     fit_args.__dict__.update(calibration_uncertainty=DEMO_CALIBRATION, gate_duration=DEMO_GATE_S, quiet=args.quiet,
                              json=args.json, metadata=DEMO_METADATA)
+    with job_worker(fit_args) as (worker, progress):
+        files, result = _demo_job(args, fit_args, out_dir, worker, progress)
+    print_summary(result, files, fit_args)
+    if not args.quiet and not args.json:
+        print(f"\nopen {out_dir / 'report.html'} in a browser to see the fit, the POVM and the Wigner functions.")
+    return 0
+
+
+def _demo_job(args, fit_args, out_dir, worker, progress):
+    from povmfit.fitting.cli.fit import characterise_for_cli
+    from povmfit.fitting.data.scan import load_scan
+    from povmfit.fitting.outputs.files import write_characterisation
+
+    scan_copy = out_dir / "demo_scan.csv"  # written with the other outputs, as one set
+    scan = dataclasses.replace(load_scan(demo_scan_path()), source=str(scan_copy))
     talk = not args.quiet and not args.json
     if talk:
         print(f"povmfit demo: simulated scan of an invented 8-bin click detector -> {scan_copy}")
         print(f"simulated with efficiency {100 * DEMO_TRUTH['efficiency']:g} %, dark_click_probability_per_pixel "
               f"{100 * DEMO_TRUTH['dark_probability']:g} %, crosstalk_probability {100 * DEMO_TRUTH['crosstalk_probability']:g} %; "
               f"analysed with a {100 * DEMO_CALIBRATION:g} % probe calibration and a {DEMO_GATE_S * 1e9:g} ns gate\n")
-    result = characterise_for_cli(scan, fit_args)
+    result = characterise_for_cli(scan, fit_args, worker, progress)
     files = write_characterisation(result, out_dir, report=True, overwrite=args.overwrite,
                                    extra_files={"demo_scan.csv": demo_scan_path()})
-    print_summary(result, files, fit_args)
-    if talk:
-        print(f"\nopen {out_dir / 'report.html'} in a browser to see the fit, the POVM and the Wigner functions.")
-    return 0
+    return files, result

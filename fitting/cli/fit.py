@@ -4,6 +4,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from contextlib import contextmanager
 from pathlib import Path
 
 from povmfit.fitting.data.files import json_safe
@@ -87,30 +88,47 @@ def run(args) -> int:
     validate_options(args)
     out_dir = Path(args.out) if args.out else Path.cwd() / f"{Path(args.scan).stem}.povmfit"
     check_output_folder(out_dir, args.overwrite)  # before any work
-    result = characterise_for_cli(args.scan, args)
-    files = result.write(out_dir, report=not args.no_report, overwrite=args.overwrite)
+    with job_worker(args) as (worker, progress):
+        result = characterise_for_cli(args.scan, args, worker, progress)
+        files = result.write(out_dir, report=not args.no_report, overwrite=args.overwrite)
     print_summary(result, files, args)
     return 0
 
 
-def characterise_for_cli(scan, args):
-    """The whole job with the command line's options; warnings of the fit become one line each."""
+@contextmanager
+def job_worker(args):
+    """(worker pool or None, progress display or None) of the whole job, the worker started
+    before this process imports the numerical libraries (its start-up overlaps theirs)."""
+    from povmfit.fitting.workflow.worker import worker_pool
+
+    progress = None
+    if not (args.quiet or args.json):
+        from povmfit.fitting.outputs.terminal import TerminalProgress
+
+        progress = TerminalProgress()
+    with worker_pool(args.jobs, progress) as worker:
+        yield worker, progress
+
+
+def characterise_for_cli(scan, args, worker, progress):
+    """The whole job with the command line's options; warnings of the fit become one line
+    each. The worker is let go as soon as the job is done (see ``worker.release``)."""
     import warnings
 
-    from povmfit.fitting.outputs.terminal import TerminalProgress
-    from povmfit.fitting.workflow.characterise import characterise
-
     from povmfit.fitting.data.metadata import parse_meta_pairs
+    from povmfit.fitting.workflow.characterise import characterise
+    from povmfit.fitting.workflow.worker import release
 
     metadata = {**getattr(args, "metadata", {}), **parse_meta_pairs(getattr(args, "meta", None))}
-    progress = None if args.quiet or args.json else TerminalProgress()
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UserWarning)
         result = characterise(
             scan, args.model, candidates=args.candidates, calibration_uncertainty=args.calibration_uncertainty,
             gate_duration=args.gate_duration, weighting=args.weighting, bootstrap=args.bootstrap, seed=args.seed,
             n_jobs=args.jobs, metadata=metadata, readout=getattr(args, "readout", None), progress=progress,
+            worker=worker,
         )
+    release(worker)
     for warning in caught:
         if issubclass(warning.category, UserWarning) and warning.category.__module__.startswith("povmfit"):
             print(f"povmfit: warning: {warning.message}", file=sys.stderr)

@@ -10,10 +10,12 @@ the worker processes are stopped and partial outputs removed; the process then e
 """
 from __future__ import annotations
 
+import _thread
 import argparse
 import importlib
 import os
 import sys
+import threading
 
 import povmfit
 from povmfit.fitting.data.errors import PovmfitError
@@ -62,8 +64,25 @@ def main(argv=None) -> int:
 INTERRUPTED = 130  # the shell's code for a command ended by SIGINT (128 + 2)
 
 
+def _redeliver_interrupts(default_hook):
+    """A ``sys.unraisablehook`` that delivers again a Ctrl-C Python had to drop: one arriving
+    while a garbage-collection callback runs (JAX registers one) is raised inside it, where
+    Python only reports it as ignored; the command would carry on. It is raised again from
+    another thread 50 ms later, so that it reaches the main thread outside the callback."""
+    def hook(unraisable):
+        if unraisable.exc_type is not None and issubclass(unraisable.exc_type, KeyboardInterrupt):
+            timer = threading.Timer(0.05, _thread.interrupt_main)
+            timer.daemon = True
+            timer.start()
+            return
+        default_hook(unraisable)
+
+    return hook
+
+
 def entry() -> None:
     """Console entry point."""
+    sys.unraisablehook = _redeliver_interrupts(sys.unraisablehook)
     try:
         code = main()
     except KeyboardInterrupt:  # Ctrl-C before a verb started (while parsing or importing)

@@ -27,7 +27,7 @@ __all__ = [
 RECONSTRUCTION_BOOTSTRAP = 50  # parametric-bootstrap resamples of the POVM and of the Wigner values
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 WIGNER_METHOD = "box"  # the published box-constrained pointwise estimator, outcome by outcome
-POVM_METHOD = "least_squares"  # the default POVM estimator: "least_squares" or "likelihood" (maximum likelihood)
+POVM_METHOD = "least_squares"  # the default POVM estimator: "least_squares" or "likelihood" (multinomial maximum likelihood)
 
 
 def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: int = 0, saturation: int | None = None,
@@ -110,12 +110,26 @@ class UnderModel:
     def __iter__(self):
         return iter((self.expected, self.spread))
 
+    @classmethod
+    def from_draws(cls, draws) -> "UnderModel":
+        return cls(draws.mean(axis=0), draws.std(axis=0, ddof=1), draws)
 
-def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations: int = CROSS_CHECK_SIMULATIONS):
+    @classmethod
+    def joined(cls, parts) -> "UnderModel":
+        """One set from parts computed apart (in the order of their simulation numbers)."""
+        import numpy as np
+
+        return cls.from_draws(np.concatenate([part.draws for part in parts]))
+
+
+def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations: int = CROSS_CHECK_SIMULATIONS,
+                                first: int = 0):
     """Reconstructions of scans simulated under a model: an :class:`UnderModel` (unpacks into
     the mean and spread over the simulations, (n_outcomes, n_photons) each).
 
-    ``simulations`` scans are simulated from the model's outcome probabilities q[p, k] (same
+    ``simulations`` scans (numbers ``first``, ``first + 1``, ..., each drawn from its own
+    generator seeded by (seed, 1, number), so a set can be shared out between processes and
+    joined with :meth:`UnderModel.joined`) are simulated from the model's outcome probabilities q[p, k] (same
     probes and shots, seeded) and reconstructed by the data's estimator (``reconstruction.method``)
     with the data's regularisation strength, so the smoothing bias and the constraint effects
     of the reconstruction act on the model exactly as on the data.
@@ -130,8 +144,8 @@ def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations:
     layout = build_layout(scan.coherent_photons, scan.thermal_photons, reconstruction.n_photons)
     q = np.clip(np.asarray(q, dtype=float), 0.0, None)
     q = q / q.sum(axis=1, keepdims=True)
-    rng = np.random.default_rng([seed, 1])
-    simulated = np.stack([rng.multinomial(shots, q) for _ in range(simulations)])
+    simulated = np.stack([np.random.default_rng([seed, 1, number]).multinomial(shots, q)
+                          for number in range(first, first + simulations)])
     # warm start at the data's reconstruction (a solution of the same problem for a nearby
     # scan): the solutions do not depend on the start, only the time does
     if getattr(reconstruction, "method", "least_squares") == "likelihood":
@@ -142,7 +156,7 @@ def reconstructions_under_model(scan, q, reconstruction, seed: int, simulations:
         operator = weighted_operator(layout, shots / shots.mean())
         draws, _, _ = solve_povm_batch(operator, simulated / shots[:, None], reconstruction.regularisation,
                                        reconstruction.theta, rtol=1e-11)
-    return UnderModel(draws.mean(axis=0), draws.std(axis=0, ddof=1), draws)
+    return UnderModel.from_draws(draws)
 
 
 def _as_scan(scan):

@@ -80,15 +80,17 @@ def model_with_readout(model, matrix, argument: str = "model") -> DetectorModel:
         raise ArgumentError(f"{argument}: {error}") from None
 
 
-def reconstruct(scan, *, bootstrap=None, seed: int = 0, saturation=None, progress=None):
+def reconstruct(scan, *, bootstrap=None, seed: int = 0, saturation=None, method: str | None = None, progress=None):
     """Model-free reconstructions of a scan (a ``ScanReconstruction``): the diagonal POVM
-    (regularised least squares, strength by cross-validation) and the pointwise and smoothed
-    Wigner values; ``bootstrap`` resamples (default as in the fit's cross-check) give their
-    standard errors; ``saturation`` fixes M of the smoothed Wigner curve."""
-    from povmfit.fitting.tomography.model_free import RECONSTRUCTION_BOOTSTRAP, reconstruct_scan
+    (``method`` "least_squares", the default, or "likelihood": multinomial maximum likelihood;
+    smoothness penalty chosen by cross-validation) and the pointwise and smoothed Wigner
+    values; ``bootstrap`` resamples (default as in the fit's cross-check) give their standard
+    errors; ``saturation`` fixes M of the smoothed Wigner curve."""
+    from povmfit.fitting.tomography.model_free import POVM_METHOD, RECONSTRUCTION_BOOTSTRAP, reconstruct_scan
 
     bootstrap = RECONSTRUCTION_BOOTSTRAP if bootstrap is None else bootstrap
-    return reconstruct_scan(as_scan(scan), bootstrap=bootstrap, seed=seed, saturation=saturation, progress=progress)
+    return reconstruct_scan(as_scan(scan), bootstrap=bootstrap, seed=seed, saturation=saturation, progress=progress,
+                            method=POVM_METHOD if method is None else method)
 
 
 def rank_and_fit(scan, model="auto", calibration_uncertainty=None, *, candidates=None, weighting="deviance",
