@@ -199,3 +199,35 @@ def test_progress_goes_to_the_callback_and_nothing_is_printed(capsys):
     silent = reconstruct_povm(coherent, thermal, counts, method="least_squares", grid=[1e-4, 1e-3, 1e-2], folds=3, bootstrap=7, seed=9)
     np.testing.assert_array_equal(silent.theta, result.theta)  # the callback draws no random numbers
     np.testing.assert_array_equal(silent.stderr, result.stderr)
+
+
+@pytest.mark.parametrize("mean", [0.3, 37.5, 5000.0, 9.2e5])
+def test_closed_form_poisson_window_matches_arbitrary_precision(mean):
+    # Source: mpmath (50 digits) of exp(-m) m^n / n!, at the centre, both shoulders and far
+    # into both tails of the window the banded builder uses. Loader's form keeps a few ulps
+    # times (1 + |ln pmf|).
+    import mpmath
+
+    from povmfit.models._banded import poisson_pmf
+
+    mpmath.mp.dps = 50
+    sd = np.sqrt(mean)
+    points = np.unique(np.clip(np.round(mean + sd * np.array([-11.0, -3.0, -0.5, 0.0, 0.5, 3.0, 11.0])), 0, None))
+    ours = poisson_pmf(points, mean)
+    for n, value in zip(points, ours):
+        exact = mpmath.exp(-mpmath.mpf(mean) + int(n) * mpmath.log(mean) - mpmath.loggamma(int(n) + 1))
+        allowed = 8 * np.finfo(float).eps * (1 + abs(float(mpmath.log(exact))))
+        assert abs(value / float(exact) - 1) <= allowed, (n, value, float(exact))
+
+
+def test_pure_probe_windows_cost_nothing_beyond_the_window():
+    # Source: the Laguerre recurrence (``probe_distributions_numpy``) over the whole range,
+    # for pure coherent, pure thermal and vacuum probes at a cutoff of 4000 photon numbers.
+    from povmfit.models._banded import pure_probe_row
+    from povmfit.models._probes import probe_distributions_numpy
+
+    for coherent, thermal in ((2500.0, 0.0), (0.0, 40.0), (0.0, 0.0), (3900.0, 0.0)):
+        first, row = pure_probe_row(coherent, thermal, 4000)
+        dense = probe_distributions_numpy(np.array([coherent]), np.array([thermal]), 4000)[0]
+        np.testing.assert_allclose(row, dense[first : first + row.size], rtol=1e-10, atol=1e-300)
+        assert dense[:first].sum() + dense[first + row.size :].sum() < 1e-15  # nothing left outside
