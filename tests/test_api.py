@@ -121,3 +121,13 @@ def test_progress_reaches_the_callback(scan_file):
     tasks = {task for task, _, _ in calls}
     assert {"compiling models", "model ranking", "bootstrap"} <= tasks
     assert all(0 <= done <= total for _, done, total in calls)
+
+
+@pytest.mark.parametrize("n_jobs", [0, -2, 1.5])
+def test_a_bad_number_of_processes_is_refused_before_any_work(n_jobs):
+    # Source: the documented argument (n_jobs >= 1 or -1); common practice, no source.
+    from povmfit.fitting.workflow.worker import worker_pool
+
+    with pytest.raises(povmfit.ArgumentError, match="n_jobs"):
+        with worker_pool(n_jobs):
+            pass

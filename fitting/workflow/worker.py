@@ -15,6 +15,8 @@ import signal
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import contextmanager
 
+from povmfit.fitting.data.errors import ArgumentError  # standard library only below it
+
 __all__ = ["worker_pool", "submit", "report_to_parent", "release", "WORKER_TIMEOUT_S", "PRELOAD"]
 
 PRELOAD = ("povmfit.fitting.tomography.model_free", "povmfit.fitting.tomography.reconstruct")
@@ -30,9 +32,8 @@ def worker_pool(n_jobs: int, progress=None):
     """A one-worker process pool for n_jobs >= 2 (or -1), else None (work done here).
 
     The worker imports :data:`PRELOAD` as it starts. Its progress (tasks given
-    :func:`report_to_parent` as their callback) comes back
-    through a queue and is passed to ``progress`` on a thread of this process, the task's name
-    marked "(worker)".
+    :func:`report_to_parent` as their callback) comes back through a queue and is passed to
+    ``progress`` on a thread of this process, the task's name marked "(worker)".
 
     The worker is a fresh interpreter (spawn) started isolated from the working folder: the
     folder is not on its module path (``PYTHONSAFEPATH`` during its start-up, and the module
