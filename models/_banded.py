@@ -10,20 +10,15 @@ Conventions as in ``_probes``: ``coherent`` is |alpha|^2, ``thermal`` is nbar, b
 photons per shot at the reference plane. Displaced-thermal probes are the Lachs form,
 evaluated by the same rescaled Laguerre recurrence as ``_probes`` (run from n = 0 to the end
 of the probe's window). Pure coherent and pure thermal probes are evaluated in closed form on
-their window alone, so their cost does not grow with the mean: Poisson by Loader's
-saddle-point form exp(-delta(n) - D(n, mean)) / sqrt(2 pi n) (C. Loader, "Fast and accurate
-computation of binomial probabilities", 2000; delta the Stirling error, D the deviance term,
-no large logarithms subtracted), thermal as the geometric nbar^n / (1 + nbar)^(n+1).
+their window alone (``_probes.pure_probe_row``), so their cost does not grow with the mean.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
-from functools import lru_cache
 
 import numpy as np
 
-from ._probes import _generous_bound, probe_distributions_numpy
-from ._stages import _DEVIANCE_SERIES_BELOW, _DEVIANCE_SERIES_TERMS, _stirling_errors
+from ._probes import _generous_bound, probe_distributions_numpy, pure_probe_row
 
 __all__ = ["BandedProbeMatrix", "banded_probe_distributions"]
 
@@ -129,55 +124,3 @@ def _displaced_slice(window, lo: int, stop: int) -> np.ndarray:
         out[a - lo : b - lo] = data[a - start : b - start]
     return out
 
-
-def pure_probe_row(coherent: float, thermal: float, n_photons: int) -> tuple[int, np.ndarray]:
-    """(first, P(first), ..., P(last)) of a pure coherent (thermal = 0) or pure thermal
-    (coherent = 0) probe over a window holding all but about 1e-20 of its mass below
-    ``n_photons`` (module docstring for the forms)."""
-    if coherent > 0 and thermal > 0:
-        raise ValueError("pure_probe_row: a displaced-thermal probe has no closed form here")
-    if coherent == 0:  # thermal (or vacuum): geometric from 0
-        last = min(n_photons, int(thermal + 40 * (thermal + 0.5) + 40))
-        n = np.arange(last, dtype=float)
-        if thermal == 0:
-            return 0, (n == 0).astype(float)
-        return 0, np.exp(n * np.log(thermal / (1.0 + thermal)) - np.log1p(thermal))
-    spread = 12.0 * np.sqrt(coherent) + 40.0  # Poisson tails beyond 12 sd hold < 1e-30
-    first = min(int(max(0.0, coherent - spread)), max(n_photons - 1, 0))
-    last = min(n_photons, int(coherent + spread) + 1)
-    return first, poisson_pmf(np.arange(first, last), coherent)
-
-
-def poisson_pmf(n, mean: float) -> np.ndarray:
-    """Poisson pmf at integers n >= 0 by Loader's saddle-point form, accurate to a few ulps
-    times (1 + |ln pmf|) for any mean."""
-    n = np.asarray(n, dtype=float)
-    safe = np.maximum(n, 1.0)
-    stirling = _stirling_table(int(safe.max()) + 1)[safe.astype(np.int64)]
-    out = np.exp(-stirling - _poisson_deviance(safe, mean)) / np.sqrt(2.0 * np.pi * safe)
-    return np.where(n == 0, np.exp(-mean), out)
-
-
-@lru_cache(maxsize=4)
-def _stirling_table_of_size(size: int) -> np.ndarray:
-    return _stirling_errors(size)
-
-
-def _stirling_table(size: int) -> np.ndarray:
-    """Stirling errors delta(0..size-1) or more, one table per power of two (remembered)."""
-    return _stirling_table_of_size(1 << max(int(size - 1).bit_length(), 7))
-
-
-def _poisson_deviance(x, mean: float) -> np.ndarray:
-    """D(x, m) = x ln(x/m) + m - x for x >= 1: the series of Loader near the mean, else the
-    well-conditioned x log1p((x - m)/m) - (x - m) (as ``_stages._deviance_term``)."""
-    difference = x - mean
-    v = difference / (x + mean)
-    v2 = v * v
-    tail = np.zeros_like(x)
-    for j in range(_DEVIANCE_SERIES_TERMS, 0, -1):
-        tail = v2 * (1.0 / (2 * j + 1) + tail)
-    series = difference * v + 2.0 * x * v * tail
-    near = np.abs(v) < _DEVIANCE_SERIES_BELOW
-    closed = x * np.log1p(np.where(near, 0.0, difference / mean)) - difference
-    return np.where(near, series, closed)

@@ -21,11 +21,14 @@ nothing overflows or underflows before the final product.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 
 import jax
 import jax.numpy as jnp
 import numpy as np
 from jax import lax
+
+from ._stages import _DEVIANCE_SERIES_BELOW, _deviance_series, _stirling_errors
 
 __all__ = [
     "fock_distribution",
@@ -153,6 +156,17 @@ def tail_mass(coherent, thermal, n_photons: int) -> np.ndarray:
     return p[:, n_photons:].sum(axis=1)
 
 
+_CUTOFF_CHUNK_ENTRIES = 8_000_000  # probes x photon numbers of the recurrence held at once (64 MB)
+
+
+def _first_below_tolerance(first: int, row, tolerance: float, bound: int) -> int:
+    """Smallest n whose tail mass (at n' >= n) is below ``tolerance``, for P(n) given from
+    n = ``first`` on (summed from the top for accuracy); ``bound`` when none is."""
+    tail = np.cumsum(row[::-1])[::-1]
+    below = np.nonzero(tail < tolerance)[0]
+    return first + int(below[0]) if below.size else bound
+
+
 def choose_cutoff(coherent, thermal, tolerance: float = 1e-10, limit: int | None = None) -> int:
     """Smallest number of photon numbers n_max such that every probe's mass at n >= n_max is
     below ``tolerance``.
@@ -169,13 +183,16 @@ def choose_cutoff(coherent, thermal, tolerance: float = 1e-10, limit: int | None
     bound = _generous_bound(coherent, thermal)
     if limit is not None and bound > 50 * limit:
         raise ValueError(f"the brightest probe needs a photon-number cutoff far above {limit}")
-    p = probe_distributions_numpy(coherent, thermal, bound)
-    # tail[:, j] = mass at n >= j, summed from the top for accuracy
-    tail = np.cumsum(p[:, ::-1], axis=1)[:, ::-1]
-    worst = tail.max(axis=0)
-    below = np.nonzero(worst < tolerance)[0]
-    cutoff = int(below[0]) if below.size else bound
-    cutoff = max(cutoff, 2)
+    # the tails fall monotonically, so the cutoff is the largest of the probes' own cutoffs;
+    # pure coherent probes in closed form on their window, the others by the recurrence
+    poisson = (thermal == 0) & (coherent > 0)
+    cutoffs = [_first_below_tolerance(*pure_probe_row(c, 0.0, bound), tolerance, bound) for c in coherent[poisson]]
+    others = np.nonzero(~poisson)[0]
+    chunk = max(1, _CUTOFF_CHUNK_ENTRIES // bound)
+    for start in range(0, others.size, chunk):
+        rows = probe_distributions_numpy(coherent[others[start : start + chunk]], thermal[others[start : start + chunk]], bound)
+        cutoffs.extend(_first_below_tolerance(0, row, tolerance, bound) for row in rows)
+    cutoff = max(max(cutoffs), 2)
     if limit is not None and cutoff > limit:
         raise ValueError(f"the brightest probe needs a photon-number cutoff of {cutoff} (limit {limit})")
     return cutoff
@@ -186,3 +203,55 @@ def probe_distributions(coherent, thermal, n_photons: int):
     return jax.vmap(lambda a, t: displaced_thermal_distribution(a, t, n_photons))(
         jnp.asarray(coherent, dtype=jnp.float64), jnp.asarray(thermal, dtype=jnp.float64)
     )
+
+
+def pure_probe_row(coherent: float, thermal: float, n_photons: int) -> tuple[int, np.ndarray]:
+    """(first, P(first), ..., P(last)) of a pure coherent (thermal = 0) or pure thermal
+    (coherent = 0) probe over a window holding all but about 1e-20 of its mass below
+    ``n_photons``. Poisson by Loader's saddle-point form exp(-delta(n) - D(n, mean)) /
+    sqrt(2 pi n) (C. Loader, "Fast and accurate computation of binomial probabilities", 2000;
+    delta the Stirling error, D the deviance term, no large logarithm subtracted), thermal as
+    the geometric nbar^n / (1 + nbar)^(n+1); only the window is evaluated."""
+    if coherent > 0 and thermal > 0:
+        raise ValueError("pure_probe_row: a displaced-thermal probe has no closed form here")
+    if coherent == 0:  # thermal (or vacuum): geometric from 0
+        last = min(n_photons, _generous_bound([0.0], [thermal]))
+        n = np.arange(last, dtype=float)
+        if thermal == 0:
+            return 0, (n == 0).astype(float)
+        return 0, np.exp(n * np.log(thermal / (1.0 + thermal)) - np.log1p(thermal))
+    spread = 12.0 * np.sqrt(coherent) + 40.0  # Poisson tails beyond 12 sd hold < 1e-30
+    first = min(int(max(0.0, coherent - spread)), max(n_photons - 1, 0))
+    last = min(n_photons, int(coherent + spread) + 1)
+    return first, poisson_pmf(np.arange(first, last), coherent)
+
+
+def poisson_pmf(n, mean: float) -> np.ndarray:
+    """Poisson pmf at integers n >= 0 by Loader's saddle-point form, accurate to a few ulps
+    times (1 + |ln pmf|) for any mean."""
+    n = np.asarray(n, dtype=float)
+    safe = np.maximum(n, 1.0)
+    stirling = _stirling_table(int(safe.max()) + 1)[safe.astype(np.int64)]
+    out = np.exp(-stirling - _poisson_deviance(safe, mean)) / np.sqrt(2.0 * np.pi * safe)
+    return np.where(n == 0, np.exp(-mean), out)
+
+
+@lru_cache(maxsize=4)
+def _stirling_table_of_size(size: int) -> np.ndarray:
+    return _stirling_errors(size)
+
+
+def _stirling_table(size: int) -> np.ndarray:
+    """Stirling errors delta(0..size-1) or more, one table per power of two (remembered)."""
+    return _stirling_table_of_size(1 << max(int(size - 1).bit_length(), 7))
+
+
+def _poisson_deviance(x, mean: float) -> np.ndarray:
+    """D(x, m) = x ln(x/m) + m - x for x >= 1: the series of Loader near the mean, else the
+    well-conditioned x log1p((x - m)/m) - (x - m) (as ``_stages._deviance_term``)."""
+    difference = x - mean
+    v = difference / (x + mean)
+    series = _deviance_series(x, difference, v)
+    near = np.abs(v) < _DEVIANCE_SERIES_BELOW
+    closed = x * np.log1p(np.where(near, 0.0, difference / mean)) - difference
+    return np.where(near, series, closed)

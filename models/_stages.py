@@ -92,6 +92,17 @@ def _log1p(z):
     return jnp.where(exact, z, jnp.log(u) * factor)
 
 
+def _deviance_series(x, difference, v):
+    """Loader's series of the deviance term near the mean, ``(x - m) v + 2 x sum_j
+    v^(2j+1)/(2j+1)`` with v = (x - m)/(x + m), by Horner's rule: plain arithmetic, so numpy
+    and JAX arrays alike."""
+    v2 = v * v
+    tail = 0.0
+    for j in range(_DEVIANCE_SERIES_TERMS, 0, -1):
+        tail = v2 * (1.0 / (2 * j + 1) + tail)
+    return difference * v + 2.0 * x * v * tail
+
+
 def _deviance_term(x, trials, p):
     """D(x, m) = x ln(x/m) + m - x with m = trials * p, for x >= 1 and m > 0.
 
@@ -105,11 +116,7 @@ def _deviance_term(x, trials, p):
     difference = (x - high) - low
     mean = high + low
     v = difference / (x + mean)
-    v2 = v * v
-    tail = 0.0
-    for j in range(_DEVIANCE_SERIES_TERMS, 0, -1):
-        tail = v2 * (1.0 / (2 * j + 1) + tail)
-    series = difference * v + 2.0 * x * v * tail
+    series = _deviance_series(x, difference, v)
     near = jnp.abs(v) < _DEVIANCE_SERIES_BELOW
     closed = x * _log1p(jnp.where(near, 0.0, difference / mean)) - difference
     return jnp.where(near, series, closed)

@@ -208,7 +208,7 @@ def test_closed_form_poisson_window_matches_arbitrary_precision(mean):
     # times (1 + |ln pmf|).
     import mpmath
 
-    from povmfit.models._banded import poisson_pmf
+    from povmfit.models._probes import poisson_pmf
 
     mpmath.mp.dps = 50
     sd = np.sqrt(mean)
@@ -223,11 +223,25 @@ def test_closed_form_poisson_window_matches_arbitrary_precision(mean):
 def test_pure_probe_windows_cost_nothing_beyond_the_window():
     # Source: the Laguerre recurrence (``probe_distributions_numpy``) over the whole range,
     # for pure coherent, pure thermal and vacuum probes at a cutoff of 4000 photon numbers.
-    from povmfit.models._banded import pure_probe_row
-    from povmfit.models._probes import probe_distributions_numpy
+    from povmfit.models._probes import probe_distributions_numpy, pure_probe_row
 
     for coherent, thermal in ((2500.0, 0.0), (0.0, 40.0), (0.0, 0.0), (3900.0, 0.0)):
         first, row = pure_probe_row(coherent, thermal, 4000)
         dense = probe_distributions_numpy(np.array([coherent]), np.array([thermal]), 4000)[0]
         np.testing.assert_allclose(row, dense[first : first + row.size], rtol=1e-10, atol=1e-300)
         assert dense[:first].sum() + dense[first + row.size :].sum() < 1e-15  # nothing left outside
+
+
+@pytest.mark.parametrize("tolerance", [1e-6, 1e-10, 1e-13])
+def test_cutoff_equals_the_one_from_the_whole_recurrence(tolerance):
+    # Source: the Laguerre recurrence over every photon number up to the generous bound, the
+    # tails of all probes summed from the top (the cutoff without closed-form windows).
+    from povmfit.models._probes import _generous_bound, probe_distributions_numpy
+
+    coherent = np.array([0.0, 0.0, 3.0, 25.0, 380.0, 1.0, 0.0])
+    thermal = np.array([0.0, 2.0, 0.0, 0.0, 0.0, 0.5, 17.0])
+    bound = _generous_bound(coherent, thermal)
+    tail = np.cumsum(probe_distributions_numpy(coherent, thermal, bound)[:, ::-1], axis=1)[:, ::-1]
+    expected = max(int(np.nonzero(tail.max(axis=0) < tolerance)[0][0]), 2)
+    assert choose_cutoff(coherent, thermal, tolerance) == expected
+    assert choose_cutoff(coherent[:1], thermal[:1], tolerance) == 2  # vacuum alone

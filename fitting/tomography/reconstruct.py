@@ -38,7 +38,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
+from scipy import special
 
 from povmfit.models import banded_probe_distributions, choose_cutoff
 
@@ -352,7 +352,7 @@ def _likelihood_bootstrap(layout, theta, shots, g, replicates, rng, progress):
 
     samples, _, _, _ = solve_likelihood_batch(layout, simulated, g, theta, rtol=RESAMPLE_RTOL, atol=RESAMPLE_ATOL,
                                               max_cycles=RESAMPLE_CYCLES, progress=report)
-    interval = np.percentile(samples, [100 * stats.norm.cdf(-1.0), 100 * stats.norm.cdf(1.0)], axis=0)
+    interval = np.percentile(samples, [100 * special.ndtr(-1.0), 100 * special.ndtr(1.0)], axis=0)
     return samples.std(axis=0, ddof=1), samples.mean(axis=0) - theta, interval
 
 

@@ -127,7 +127,7 @@ class ScanReconstruction:
         lines.append(("estimator", "maximum likelihood on the counts (columns on the simplex), smoothness penalty g"
                       if method == "likelihood" else "regularised least squares on the frequencies (Feito et al. 2009)"))
         if method == "likelihood" and rec.cv_folds:
-            how = how.replace("cross-validation", "cross-validation on the held-out log-likelihood (the largest),")
+            how = how.replace("cross-validation", "cross-validation (largest held-out log-likelihood)")
         lines.append(("regularisation", f"g = {format_number(rec.regularisation, 3)}, {how}"))
         if method == "likelihood" and rec.bootstrap > 1:
             lines.append(("penalty bias", f"largest |bootstrap bias| / stderr on constrained photon numbers: "
