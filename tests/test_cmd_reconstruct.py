@@ -50,7 +50,7 @@ def test_reconstruct_writes_both_tables(tmp_path, capsys):
     assert {float(r["re_alpha"]) for r in pointwise} == {0.0, 1.0}  # the two displacements with 3 levels
     assert {r["source"] for r in wigner} == {"pointwise", "smoothed"}
     assert summary["wigner_points"] == 2
-    assert summary["povm"]["method"] == "least_squares"  # the default estimator
+    assert summary["povm"]["method"] == "likelihood"  # the default estimator
 
 
 def test_method_option_selects_the_estimator(tmp_path, capsys):

@@ -128,4 +128,4 @@ def test_the_library_reconstruct_takes_the_estimator(scan):
 
     result = povmfit.reconstruct(scan, bootstrap=0, method="likelihood")
     assert result.reconstruction.method == "likelihood"
-    assert povmfit.reconstruct(scan, bootstrap=0).reconstruction.method == "least_squares"  # the default
+    assert povmfit.reconstruct(scan, bootstrap=0).reconstruction.method == "likelihood"  # the default

@@ -55,7 +55,8 @@ def report_inputs(scan_path):
     scan = load_scan(scan_path)
     comparison = compare_models(scan, ["array:4", "array:4+dark"], cv_folds=0)
     result = comparison.fits[comparison.chosen.spec]
-    recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4])
+    recon = reconstruct_povm(scan.coherent_photons, scan.thermal_photons, scan.counts, bootstrap=5, grid=[1e-4],
+                             method="least_squares")
     from povmfit.fitting.outputs.report import curve_cutoff
 
     wide, se = result.povm_with_errors(max(recon.n_photons, curve_cutoff(scan, result)))

@@ -27,7 +27,7 @@ __all__ = [
 RECONSTRUCTION_BOOTSTRAP = 50  # parametric-bootstrap resamples of the POVM and of the Wigner values
 CROSS_CHECK_SIMULATIONS = 50  # scans simulated from the fitted model for the POVM cross-check
 WIGNER_METHOD = "box"  # the published box-constrained pointwise estimator, outcome by outcome
-POVM_METHOD = "least_squares"  # the default POVM estimator: "least_squares" or "likelihood" (multinomial maximum likelihood)
+POVM_METHOD = "likelihood"  # the default POVM estimator: "likelihood" (multinomial maximum likelihood) or "least_squares"
 
 
 def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: int = 0, saturation: int | None = None,
@@ -42,8 +42,8 @@ def reconstruct_scan(scan, *, bootstrap: int = RECONSTRUCTION_BOOTSTRAP, seed: i
         saturation: saturation photon number M of the smoothed Wigner curve; default: chosen
             by AIC among 1..M of the pointwise values.
         progress: optional callback ``progress(task, done, total)``; nothing is printed.
-        method: POVM estimator, "least_squares" (regularised least squares on the
-            frequencies, the default) or "likelihood" (multinomial maximum likelihood).
+        method: POVM estimator, "likelihood" (multinomial maximum likelihood, the default)
+            or "least_squares" (regularised least squares on the frequencies).
     Returns:
         :class:`ScanReconstruction` (``write(out_dir)`` gives povm.csv, wigner.csv and
         reconstruction.json).

@@ -2,17 +2,17 @@
 
 Two estimators, chosen by ``method``:
 
-``"least_squares"`` (the default): the regularised least-squares estimator below.
-
-``"likelihood"``: maximum likelihood for the multinomial counts, columns on the
+``"likelihood"`` (the default): maximum likelihood for the multinomial counts, columns on the
 simplex, with an optional smoothness penalty g sum_k sum_n (theta[k, n] - theta[k, n+1])^2
 whose strength is chosen by K-fold cross-validation on the held-out probes' log-likelihood
 (the grid includes g = 0, plain maximum likelihood; the g with the largest held-out
 log-likelihood is taken). Solver: an interior-point method for small dense problems, penalised
 EM accelerated by SQUAREM beyond (``likelihood_solver``). The bootstrap also gives the
 estimator's bias at the chosen g (mean of the replicates minus the estimate), reported beside
-the standard errors, and 68 % percentile intervals. It is not yet the default: in the whole
-job it costs about 1.3 times the least-squares estimator's time (DEVELOPERS.md).
+the standard errors, and 68 % percentile intervals.
+
+``"least_squares"``: the regularised least-squares estimator below (the default before the
+likelihood estimator; it smooths more where the data are informative).
 
 Least-squares problem (Lundeen et al., Nature Physics 5, 27 (2009); Feito et al., New J. Phys. 11, 093038
 (2009)), with per-probe weights w_p = shots_p / mean(shots):
@@ -211,13 +211,13 @@ def cross_validate(layout, frequencies, probe_weights, grid, folds: int, rng, rt
     return scores
 
 
-def reconstruct_povm(coherent, thermal, counts, *, method: str = "least_squares", n_photons: int | None = None,
+def reconstruct_povm(coherent, thermal, counts, *, method: str = "likelihood", n_photons: int | None = None,
                      grid=None, folds: int = DEFAULT_FOLDS, bootstrap: int = 100, seed: int | None = 0,
                      tolerance: float = 1e-10, progress=None) -> Reconstruction:
     """Reconstruct the diagonal POVM from probe counts.
 
     Args:
-        method: "least_squares" (the default) or "likelihood" (maximum likelihood).
+        method: "likelihood" (maximum likelihood, the default) or "least_squares".
         coherent, thermal: (n_probes,) |alpha|^2 and nbar of each probe.
         counts: (n_probes, n_outcomes) integer outcome counts (shots are the row sums).
         n_photons: photon numbers 0..n_photons-1; default ``choose_cutoff(..., tolerance)``.

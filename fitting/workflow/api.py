@@ -82,8 +82,8 @@ def model_with_readout(model, matrix, argument: str = "model") -> DetectorModel:
 
 def reconstruct(scan, *, bootstrap=None, seed: int = 0, saturation=None, method: str | None = None, progress=None):
     """Model-free reconstructions of a scan (a ``ScanReconstruction``): the diagonal POVM
-    (``method`` "least_squares", the default, or "likelihood": multinomial maximum likelihood;
-    smoothness penalty chosen by cross-validation) and the pointwise and smoothed Wigner
+    (``method`` "likelihood", the default: multinomial maximum likelihood, or
+    "least_squares"; smoothness penalty chosen by cross-validation) and the pointwise and smoothed Wigner
     values; ``bootstrap`` resamples (default as in the fit's cross-check) give their standard
     errors; ``saturation`` fixes M of the smoothed Wigner curve."""
     from povmfit.fitting.tomography.model_free import POVM_METHOD, RECONSTRUCTION_BOOTSTRAP, reconstruct_scan
