@@ -37,13 +37,14 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
+from scipy import sparse
 
 from povmfit.models import banded_probe_distributions
 
 __all__ = [
     "ProblemLayout", "build_layout", "WeightedOperator", "weighted_operator", "solve_povm",
     "solve_povm_batch", "objective_value", "predicted_frequencies", "project_columns_to_simplex",
-    "coarse_start", "interpolation_matrix", "BATCH",
+    "coarse_start", "interpolation_matrix", "interpolate", "BATCH",
 ]
 
 BATCH = 5  # problems per compiled solve (one compiled shape; 5 = the default number of folds)
@@ -416,33 +417,46 @@ def solve_povm(op: WeightedOperator, frequencies, regularisation: float, theta0=
     return theta[0], int(iterations[0]), bool(converged[0])
 
 
-def interpolation_matrix(n_coarse: int, n_photons: int) -> np.ndarray:
-    """Hat functions on ``n_coarse`` evenly spaced nodes over 0..n_photons-1: (n_coarse, n_photons).
+def interpolation_matrix(n_coarse: int, n_photons: int, n_columns: int | None = None) -> sparse.csr_matrix:
+    """Hat functions on ``n_coarse`` evenly spaced nodes over 0..n_photons-1, sparse
+    (n_coarse, n_columns) (default n_columns = n_photons; columns beyond n_photons are zero).
 
-    Columns are convex weights, so theta = theta_coarse @ P keeps every column in the simplex.
+    Columns are convex weights (two nonzero entries at most), so theta = theta_coarse @ P
+    keeps every column in the simplex.
     """
-    nodes = np.linspace(0.0, n_photons - 1.0, n_coarse)
-    spacing = nodes[1] - nodes[0]
-    return np.clip(1.0 - np.abs(np.arange(n_photons)[None, :] - nodes[:, None]) / spacing, 0.0, None)
+    n_columns = n_photons if n_columns is None else n_columns
+    n = np.arange(n_photons)
+    if n_coarse < 2:
+        return sparse.csr_matrix((np.ones(n_photons), (np.zeros(n_photons, dtype=np.int64), n)), shape=(1, n_columns))
+    spacing = (n_photons - 1.0) / (n_coarse - 1.0)
+    left = np.minimum((n / spacing).astype(np.int64), n_coarse - 2)
+    right_weight = np.clip(n / spacing - left, 0.0, 1.0)
+    rows = np.r_[left, left + 1]
+    values = np.r_[1.0 - right_weight, right_weight]
+    keep = values > 0
+    return sparse.csr_matrix((values[keep], (rows[keep], np.r_[n, n][keep])), shape=(n_coarse, n_columns))
+
+
+def interpolate(theta_coarse, hats) -> np.ndarray:
+    """theta_coarse (K, n_coarse) on the photon numbers: (K, n_photons) dense."""
+    return np.asarray((hats.T @ np.asarray(theta_coarse).T).T)
 
 
 def coarse_problem(layout: ProblemLayout, n_coarse: int, n_probes: int):
     """The problem restricted to theta piecewise linear between ``n_coarse`` nodes: (dense
-    layout of the probes against the hat functions, hats (n_coarse, n_photons), node spacing h).
-    The smoothness term of such a theta is the coarse one divided by h."""
+    layout of the probes against the hat functions, hats (n_coarse, n_photons) sparse, node
+    spacing h). The smoothness term of such a theta is the coarse one divided by h."""
     n_photons = layout.n_photons
     n_coarse = int(min(n_coarse, n_photons))
-    hats = interpolation_matrix(n_coarse, n_photons)
-    coarse = np.zeros((n_probes, n_coarse))
     padded_length = max((layout.blocks.shape[0] - 1) * layout.stride + layout.span, n_photons)
-    hats_padded = np.zeros((n_coarse, padded_length))
-    hats_padded[:, :n_photons] = hats
+    hats_padded = interpolation_matrix(n_coarse, n_photons, padded_length).tocsc()
+    coarse = np.zeros((n_probes, n_coarse))
     for b in range(layout.blocks.shape[0]):
         rows = layout.probe_index[b] >= 0
         window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
-        coarse[layout.probe_index[b, rows]] = layout.blocks[b, rows] @ window.T
+        coarse[layout.probe_index[b, rows]] = (window @ layout.blocks[b, rows].T).T
     coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
-    return coarse_layout, hats, (n_photons - 1.0) / max(n_coarse - 1.0, 1.0)
+    return coarse_layout, hats_padded[:, :n_photons].tocsr(), (n_photons - 1.0) / max(n_coarse - 1.0, 1.0)
 
 
 def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisation: float,
@@ -453,7 +467,7 @@ def coarse_start(layout: ProblemLayout, frequencies, probe_weights, regularisati
     coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, int(layout.probe_index.max()) + 1)
     theta, _, _ = solve_povm(weighted_operator(coarse_layout, probe_weights), frequencies,
                              regularisation / spacing, rtol=rtol)
-    return theta @ hats
+    return interpolate(theta, hats)
 
 
 def objective_value(layout: ProblemLayout, frequencies, probe_weights, regularisation: float, theta) -> float:
