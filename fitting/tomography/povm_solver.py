@@ -185,31 +185,43 @@ def _michelot_update(v, tau):
 
 
 def _strided_spans(theta, n_blocks, stride, span):
-    """theta (B, K, N) cut into the blocks' spans: (B, K, n_blocks, span). Span b is strides
-    b .. b + span/stride - 1, so the spans are shifted slices of theta cut into strides (no gather)."""
+    """theta (B, N, K) (photon numbers first) cut into the blocks' spans: (B, n_blocks, span, K).
+    Span b is strides b .. b + span/stride - 1, so the spans are shifted slices of theta cut
+    into strides (no gather)."""
     per_span = span // stride
     n_strides = n_blocks - 1 + per_span
-    padded = jnp.pad(theta, ((0, 0), (0, 0), (0, max(n_strides * stride - theta.shape[-1], 0))))
-    strides = padded[..., : n_strides * stride].reshape(theta.shape[:2] + (n_strides, stride))
-    return jnp.concatenate([strides[:, :, j : j + n_blocks] for j in range(per_span)], axis=-1)
+    padded = jnp.pad(theta, ((0, 0), (0, max(n_strides * stride - theta.shape[1], 0)), (0, 0)))
+    strides = padded[:, : n_strides * stride].reshape((theta.shape[0], n_strides, stride, theta.shape[2]))
+    return jnp.concatenate([strides[:, j : j + n_blocks] for j in range(per_span)], axis=2)
+
+
+def predict_photon_major(theta, blocks, stride):
+    """Predicted probabilities per row for a batch: theta (B, N, K) -> (B, n_blocks, rows, K)
+    (one matrix product per block, rows x span times span x K)."""
+    n_blocks, _, span = blocks.shape
+    return jnp.einsum("brs,zbsk->zbrk", blocks, _strided_spans(theta, n_blocks, stride, span))
+
+
+def adjoint_photon_major(residual, blocks, stride, n_photons):
+    """F^T residual back on photon numbers for a batch: (B, n_blocks, rows, K) -> (B, N, K)."""
+    n_blocks, _, span = blocks.shape
+    per_span = span // stride
+    batch, n_outcomes = residual.shape[0], residual.shape[-1]
+    parts = jnp.einsum("brs,zbrk->zbsk", blocks, residual).reshape((batch, n_blocks, per_span, stride, n_outcomes))
+    # stride j of span b is stride b + j of the photon numbers
+    out = sum(jnp.pad(parts[:, :, j], ((0, 0), (j, per_span - 1 - j), (0, 0), (0, 0))) for j in range(per_span))
+    out = out.reshape((batch, -1, n_outcomes))[:, :n_photons]
+    return jnp.pad(out, ((0, 0), (0, n_photons - out.shape[1]), (0, 0)))  # no probe beyond the last block
 
 
 def _predict(theta, blocks, stride):
-    """Predicted probabilities per row for a batch: theta (B, K, N) -> (B, n_blocks, rows, K)."""
-    n_blocks, _, span = blocks.shape
-    return jnp.einsum("brs,zkbs->zbrk", blocks, _strided_spans(theta, n_blocks, stride, span))
+    """:func:`predict_photon_major` for theta (B, K, N)."""
+    return predict_photon_major(jnp.swapaxes(theta, 1, 2), blocks, stride)
 
 
 def _adjoint(residual, blocks, stride, n_photons):
-    """F^T residual back on photon numbers for a batch: (B, n_blocks, rows, K) -> (B, K, N)."""
-    n_blocks, _, span = blocks.shape
-    per_span = span // stride
-    parts = jnp.einsum("brs,zbrk->zkbs", blocks, residual).reshape(
-        residual.shape[:1] + residual.shape[-1:] + (n_blocks, per_span, stride))
-    # stride j of span b is stride b + j of the photon numbers
-    out = sum(jnp.pad(parts[:, :, :, j], ((0, 0), (0, 0), (j, per_span - 1 - j), (0, 0))) for j in range(per_span))
-    out = out.reshape(out.shape[:2] + (-1,))[:, :, :n_photons]
-    return jnp.pad(out, ((0, 0), (0, 0), (0, n_photons - out.shape[-1])))  # no probe beyond the last block
+    """:func:`adjoint_photon_major` on (B, K, N)."""
+    return jnp.swapaxes(adjoint_photon_major(residual, blocks, stride, n_photons), 1, 2)
 
 
 def _smoothness_gradient(theta):
