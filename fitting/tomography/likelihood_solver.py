@@ -182,8 +182,7 @@ def _m_step(expected, current, g):
         return lam, step + 1, jnp.max(jnp.abs(excess))
 
     # Newton's method converges quadratically; near a fixed point the start above is nearly
-    # exact and one or two steps reach NEWTON_TOLERANCE (each step costs about as much as a
-    # prediction and its adjoint at 50 outcomes, so the steps are not spent blindly)
+    # exact and one or two steps reach NEWTON_TOLERANCE
     lam, _, _ = jax.lax.while_loop(lambda state: (state[1] < NEWTON_STEPS) & (state[2] > NEWTON_TOLERANCE), newton,
                                    (lam, jnp.asarray(0, jnp.int32), jnp.asarray(jnp.inf, lam.dtype)))
     t, _ = entries(lam)
@@ -206,9 +205,9 @@ def _squarem(theta0, counts_rows, blocks, constant, g, active, rtol, atol, max_c
     """SQUAREM-accelerated penalised EM on a batch (see module docstring).
 
     Shapes: theta0 (B, N, K) (photon numbers first, as in :func:`_m_step`); counts_rows
-    (B, n_blocks, rows, K); constant, g, rtol (B,); active (B,) bool (padding members never move). Member b stops when f changes by at most
-    atol + rtol |f| in one cycle (three EM steps) or after ``max_cycles`` cycles. Returns
-    (theta, f, cycles, converged).
+    (B, n_blocks, rows, K); constant, g, rtol (B,); active (B,) bool (padding members never
+    move). Member b stops when f changes by at most atol + rtol |f| in one cycle (three EM
+    steps) or after ``max_cycles`` cycles. Returns (theta, f, cycles, converged).
     """
     per = (slice(None), None, None)
 
