@@ -409,3 +409,23 @@ def test_photon_numbers_beyond_every_probe_window_are_carried_along():
     counts = np.random.default_rng(2).multinomial(1000, dense / dense.sum(axis=1, keepdims=True))
     solved, value, _, _ = solve_likelihood(blocked, counts, 1.0, theta, max_cycles=3)
     assert solved.shape == theta.shape and np.isfinite(value) and np.allclose(solved.sum(axis=0), 1.0)
+
+
+@pytest.mark.parametrize("n_coarse", [40, 200])
+def test_banded_coarse_layout_predicts_like_the_dense_product_with_the_hat_functions(n_coarse):
+    # Source: independent brute force: the dense probe matrix times the hat functions
+    # (F @ H^T, H from np.interp of unit node vectors), predictions compared exactly.
+    from povmfit.fitting.tomography.povm_solver import coarse_problem
+
+    coherent = np.linspace(0.0, 3000.0, 60)
+    thermal = np.zeros_like(coherent)
+    n_photons = choose_cutoff(coherent, thermal)
+    fine = build_layout(coherent, thermal, n_photons, banded=True)
+    coarse, hats, _ = coarse_problem(fine, n_coarse, coherent.size, banded=None)
+    assert coarse.blocks.shape[0] > 1  # the banded case in question
+    nodes = np.linspace(0.0, n_photons - 1.0, n_coarse)
+    brute_hats = np.stack([np.interp(np.arange(n_photons), nodes, np.eye(n_coarse)[j]) for j in range(n_coarse)])
+    np.testing.assert_allclose(hats.toarray(), brute_hats, atol=1e-12)
+    dense_coarse = np.asarray(probe_distributions(coherent, thermal, n_photons)) @ brute_hats.T
+    theta = np.random.default_rng(3).dirichlet(np.ones(4), size=n_coarse).T
+    np.testing.assert_allclose(predicted_frequencies(coarse, theta, coherent.size), dense_coarse @ theta.T, atol=1e-11)

@@ -47,8 +47,8 @@ only when its objective is not above the current one, else the plain double step
 A member stops when f changes by at most atol + rtol |f| over one cycle (three EM steps).
 The probe matrix is stored in blocks (``povm_solver.ProblemLayout``), so one step costs
 O(n_probes x window x n_outcomes); large problems start from the solution restricted to
-piecewise-linear theta on a coarse grid of nodes (:func:`likelihood_coarse_start`, a dense
-problem of 400 nodes).
+piecewise-linear theta on a coarse grid of nodes (:func:`likelihood_coarse_start`, 400 nodes,
+itself in blocks when the probes' windows cover few nodes).
 
 Many problems (cross-validation folds, bootstrap replicates, simulated scans) sharing the
 probes are solved together, each with its own counts, g and start; a member stops moving
@@ -581,10 +581,11 @@ def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float
                             rtol: float = 1e-9, atol: float = 1e-4, max_cycles: int = 500) -> np.ndarray:
     """Warm start for large problems: theta piecewise linear between ``n_coarse`` nodes
     (hat functions are convex weights, so the columns stay in the simplex; the penalty of a
-    piecewise-linear theta with node spacing h is the coarse one divided by h), solved
-    densely and interpolated back. Shape (n_outcomes, n_photons)."""
+    piecewise-linear theta with node spacing h is the coarse one divided by h), solved (in
+    blocks when the probes' coarse windows are narrow, :func:`povm_solver.coarse_problem`)
+    and interpolated back. Shape (n_outcomes, n_photons)."""
     counts = np.asarray(counts, dtype=float)
-    coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, counts.shape[0])
+    coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, counts.shape[0], banded=None)
     theta, _, _, _ = solve_likelihood(coarse_layout, counts, regularisation / spacing, rtol=rtol, atol=atol,
                                       max_cycles=max_cycles)
     theta = theta + 1e-9  # no exact zeros (EM keeps a zero entry at zero)

@@ -41,7 +41,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy import sparse
 
-from povmfit.models import banded_probe_distributions
+from povmfit.models import BandedProbeMatrix, banded_probe_distributions
 
 __all__ = [
     "ProblemLayout", "build_layout", "WeightedOperator", "weighted_operator", "solve_povm",
@@ -100,9 +100,13 @@ def build_layout(coherent, thermal, n_photons: int, tolerance: float = 1e-12, ba
     ``banded=None`` uses blocks when the widest probe window is below a third of n_photons
     (one dense block otherwise); True/False force the choice (True needs width < n_photons).
     """
-    use_blocks = banded
-    banded = banded_probe_distributions(coherent, thermal, n_photons, tolerance)
-    width, n_probes = banded.width, banded.n_probes
+    return layout_from_windows(banded_probe_distributions(coherent, thermal, n_photons, tolerance), banded)
+
+
+def layout_from_windows(banded: BandedProbeMatrix, use_blocks: bool | None = None) -> ProblemLayout:
+    """Block layout of probe rows stored as windows (:class:`povmfit.models.BandedProbeMatrix`);
+    ``use_blocks`` as ``banded`` in :func:`build_layout`."""
+    width, n_probes, n_photons = banded.width, banded.n_probes, banded.n_photons
     if use_blocks is None:
         use_blocks = 3 * width < n_photons
     if not use_blocks or width >= n_photons:  # one dense block
@@ -456,20 +460,34 @@ def interpolate(theta_coarse, hats) -> np.ndarray:
     return np.asarray((hats.T @ np.asarray(theta_coarse).T).T)
 
 
-def coarse_problem(layout: ProblemLayout, n_coarse: int, n_probes: int):
-    """The problem restricted to theta piecewise linear between ``n_coarse`` nodes: (dense
-    layout of the probes against the hat functions, hats (n_coarse, n_photons) sparse, node
-    spacing h). The smoothness term of such a theta is the coarse one divided by h."""
+def coarse_problem(layout: ProblemLayout, n_coarse: int, n_probes: int, banded: bool | None = False):
+    """The problem restricted to theta piecewise linear between ``n_coarse`` nodes: (layout of
+    the probes against the hat functions, hats (n_coarse, n_photons) sparse, node spacing h).
+    The smoothness term of such a theta is the coarse one divided by h. ``banded`` as in
+    :func:`build_layout` (False: one dense block; None: blocks when the probes' coarse windows
+    are narrow)."""
     n_photons = layout.n_photons
     n_coarse = int(min(n_coarse, n_photons))
     padded_length = max((layout.blocks.shape[0] - 1) * layout.stride + layout.span, n_photons)
     hats_padded = interpolation_matrix(n_coarse, n_photons, padded_length).tocsc()
-    coarse = np.zeros((n_probes, n_coarse))
+    windows, starts = [None] * n_probes, np.zeros(n_probes, dtype=np.int64)
     for b in range(layout.blocks.shape[0]):
         rows = layout.probe_index[b] >= 0
-        window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span]
-        coarse[layout.probe_index[b, rows]] = (window @ layout.blocks[b, rows].T).T
-    coarse_layout = ProblemLayout(coarse[None], np.arange(n_probes)[None], n_coarse, n_coarse, n_coarse)
+        window = hats_padded[:, b * layout.stride : b * layout.stride + layout.span].tocsr()
+        touched = np.nonzero(np.diff(window.indptr))[0]
+        lo, hi = (int(touched[0]), int(touched[-1]) + 1) if touched.size else (0, 1)
+        part = (window[lo:hi] @ layout.blocks[b, rows].T).T  # (probes of the block, nodes lo..hi-1)
+        for p, row in zip(layout.probe_index[b, rows], part):
+            support = np.nonzero(row > 0)[0]
+            first, last = (int(support[0]), int(support[-1]) + 1) if support.size else (0, 1)
+            windows[p], starts[p] = row[first:last], lo + first
+    width = max(w.size for w in windows)
+    values = np.zeros((n_probes, width))
+    for p, w in enumerate(windows):
+        start = min(starts[p], max(n_coarse - width, 0))  # keep every window inside the nodes
+        values[p, starts[p] - start : starts[p] - start + w.size] = w
+        starts[p] = start
+    coarse_layout = layout_from_windows(BandedProbeMatrix(values, starts, n_coarse), banded)
     return coarse_layout, hats_padded[:, :n_photons].tocsr(), (n_photons - 1.0) / max(n_coarse - 1.0, 1.0)
 
 
