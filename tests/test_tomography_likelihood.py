@@ -429,3 +429,32 @@ def test_banded_coarse_layout_predicts_like_the_dense_product_with_the_hat_funct
     dense_coarse = np.asarray(probe_distributions(coherent, thermal, n_photons)) @ brute_hats.T
     theta = np.random.default_rng(3).dirichlet(np.ones(4), size=n_coarse).T
     np.testing.assert_allclose(predicted_frequencies(coarse, theta, coherent.size), dense_coarse @ theta.T, atol=1e-11)
+
+
+def test_each_level_of_the_coarse_cascade_ends_no_higher_than_the_last():
+    # Source: exact identities plus EM's monotonicity (Dempster, Laird & Rubin 1977): nested
+    # grids (41 -> 201 nodes on 2,001 photon numbers, integer spacings 50 and 10) keep a
+    # piecewise-linear theta and its penalty, so the second level starts where the first ended.
+    from povmfit.fitting.tomography.likelihood_solver import coarse_levels, likelihood_coarse_start
+
+    coherent = np.linspace(0.0, 1500.0, 40)
+    thermal = np.zeros_like(coherent)
+    n_photons = 2001
+    layout = build_layout(coherent, thermal, n_photons, banded=True)
+    p = 0.004  # invented 3-outcome detector: Binomial(n, p) clicks, 2 or more merged
+    n = np.arange(n_photons)
+    truth = np.stack([(1 - p) ** n, n * p * (1 - p) ** np.maximum(n - 1, 0)])
+    truth = np.vstack([truth, 1.0 - truth.sum(axis=0)])
+    q = np.clip(predicted_frequencies(layout, truth, coherent.size), 0, None)
+    counts = np.random.default_rng(4).multinomial(20_000, q / q.sum(axis=1, keepdims=True))
+    g, calls = 10.0, []
+    one = likelihood_coarse_start(layout, counts, g, levels=[41], max_cycles=(40, 40))
+    unmoved = likelihood_coarse_start(layout, counts, g, levels=[41, 201], max_cycles=(40, 0))
+    two = likelihood_coarse_start(layout, counts, g, levels=[41, 201], max_cycles=(40, 40), chunk=20,
+                                  progress=lambda done, total: calls.append((done, total)))
+    f_one, f_unmoved, f_two = (likelihood_objective(layout, counts, g, theta) for theta in (one, unmoved, two))
+    assert f_unmoved == pytest.approx(f_one, abs=1e-4)  # 1e-4 nats: the 1e-9 floor keeping entries off zero
+    assert f_two <= f_one + 1e-4
+    assert f_one - f_two > 1.0  # and the finer level does move (40 cycles are far from converged)
+    assert calls == [(40, 80), (60, 80), (80, 80)]  # one report per call
+    assert coarse_levels(20_000) == [400, 1996] and coarse_levels(10**6) == [400, 1996, 9976, 49876]

@@ -47,8 +47,9 @@ only when its objective is not above the current one, else the plain double step
 A member stops when f changes by at most atol + rtol |f| over one cycle (three EM steps).
 The probe matrix is stored in blocks (``povm_solver.ProblemLayout``), so one step costs
 O(n_probes x window x n_outcomes); large problems start from the solution restricted to
-piecewise-linear theta on a coarse grid of nodes (:func:`likelihood_coarse_start`, 400 nodes,
-itself in blocks when the probes' windows cover few nodes).
+piecewise-linear theta on a cascade of node grids (:func:`likelihood_coarse_start`: 400
+nodes, then five times more per level, each in blocks when the probes' windows cover few
+nodes).
 
 Many problems (cross-validation folds, bootstrap replicates, simulated scans) sharing the
 probes are solved together, each with its own counts, g and start; a member stops moving
@@ -75,7 +76,7 @@ from povmfit.fitting.tomography.povm_solver import (
 __all__ = [
     "solve_likelihood", "solve_likelihood_batch", "likelihood_objective", "heldout_log_likelihood",
     "heldout_log_likelihood_per_probe",
-    "likelihood_coarse_start", "solve_likelihood_chunked", "em_step_numpy", "uses_interior_point",
+    "likelihood_coarse_start", "coarse_levels", "solve_likelihood_chunked", "em_step_numpy", "uses_interior_point",
     "probe_outer_products", "METHODS", "BATCH",
     "NEWTON_STEPS", "Q_FLOOR", "INTERIOR_POINT_PHOTONS",
 ]
@@ -95,6 +96,11 @@ ROUNDING_FLOOR = 4.0  # interior point: certificate floor in units of eps sum c 
 START_MIX = 0.5  # interior point: weight of the given start in the first iterate (the rest uniform)
 HESSIAN_CUT = 1e-30  # interior point: probe entries below this fraction of the probe's largest are left out of the Hessian
 STALL_STEPS = 30  # interior point: a member stops when its certificate has not halved in this many steps
+COARSE_NODES = 400  # coarse start: nodes of the first level
+LEVEL_GROWTH = 5  # ... each later level cuts every interval of the last into this many
+FINEST_SPACING = 5  # ... while it keeps at least this many photon numbers per interval
+LEVEL_CYCLES = (500, 100)  # ... SQUAREM cycles at most on the first level and on each later one
+LEVEL_CHUNK = 50  # ... run this many at a time (one progress report each)
 
 
 # ----- numpy helpers (set-up, scoring) ---------------------------------------------------------
@@ -577,17 +583,64 @@ def solve_likelihood_chunked(layout: ProblemLayout, counts, regularisation: floa
     return theta, value, done, converged
 
 
-def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float, n_coarse: int = 400,
-                            rtol: float = 1e-9, atol: float = 1e-4, max_cycles: int = 500) -> np.ndarray:
-    """Warm start for large problems: theta piecewise linear between ``n_coarse`` nodes
-    (hat functions are convex weights, so the columns stay in the simplex; the penalty of a
-    piecewise-linear theta with node spacing h is the coarse one divided by h), solved (in
-    blocks when the probes' coarse windows are narrow, :func:`povm_solver.coarse_problem`)
-    and interpolated back. Shape (n_outcomes, n_photons)."""
-    counts = np.asarray(counts, dtype=float)
-    coarse_layout, hats, spacing = coarse_problem(layout, n_coarse, counts.shape[0], banded=None)
-    theta, _, _, _ = solve_likelihood(coarse_layout, counts, regularisation / spacing, rtol=rtol, atol=atol,
-                                      max_cycles=max_cycles)
-    theta = theta + 1e-9  # no exact zeros (EM keeps a zero entry at zero)
-    return interpolate(theta / theta.sum(axis=0, keepdims=True), hats)
+def coarse_levels(n_photons: int) -> list[int]:
+    """Node counts of the coarse levels of :func:`likelihood_coarse_start`: COARSE_NODES, then
+    each level's intervals cut into LEVEL_GROWTH (n -> LEVEL_GROWTH (n - 1) + 1 nodes, so every
+    grid holds the last one's nodes) while the next level keeps at least FINEST_SPACING photon
+    numbers per interval (20,000 photon numbers: 400, 1,996; 10^6: 400, 1,996, 9,976, 49,876)."""
+    levels = [int(min(COARSE_NODES, n_photons))]
+    while levels[-1] > 1 and (n_photons - 1) / (LEVEL_GROWTH * (levels[-1] - 1)) >= FINEST_SPACING:
+        levels.append(LEVEL_GROWTH * (levels[-1] - 1) + 1)
+    return levels
 
+
+def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float, levels=None,
+                            rtol: float = 1e-9, atol: float = 1e-4, max_cycles=LEVEL_CYCLES, progress=None,
+                            chunk: int = LEVEL_CHUNK) -> np.ndarray:
+    """Warm start for large problems: theta piecewise linear between nodes (hat functions are
+    convex weights, so the columns stay in the simplex; the penalty of a piecewise-linear theta
+    with node spacing h is the coarse one divided by h), solved on a cascade of ever finer
+    node grids (``levels``, default :func:`coarse_levels`), each level started at the last
+    one's solution and solved in blocks when the probes' coarse windows are narrow
+    (:func:`povm_solver.coarse_problem`), then interpolated onto every photon number.
+    ``max_cycles``: SQUAREM cycles at most on the first level and on each later one; later
+    levels run ``chunk`` at a time, and ``progress(done, total)`` follows after each call
+    (cycles, all levels' limits in total; a level that converges early counts as done). Shape (n_outcomes, n_photons).
+
+    The grids are nested and a piecewise-linear theta keeps its penalty on a finer grid (each
+    interval cut into m parts of 1/m the difference and 1/m the spacing), so every level
+    starts at the objective where the last ended (but for the 1e-9 that keeps entries off
+    zero), and EM only lowers it.
+
+    Why a cascade: on 20 outcomes x 20,000 photon numbers (benchmark problem), 60 SQUAREM
+    cycles on every photon number after a 400-node start reached f = 13,882 nats; 100 cycles
+    on 2,000 nodes reach 13,877 and 500 reach 13,832, each cycle at about a sixth of the cost.
+    EM's slow directions are smooth ones, which a grid of nodes carries cheaply.
+    """
+    counts = np.asarray(counts, dtype=float)
+    levels = coarse_levels(layout.n_photons) if levels is None else list(levels)
+    limits = [max_cycles[min(level, 1)] for level in range(len(levels))]
+    previous, done = None, 0
+    for n_nodes, limit in zip(levels, limits):
+        coarse_layout, hats, spacing = coarse_problem(layout, n_nodes, counts.shape[0], banded=None)
+        nodes = np.linspace(0.0, layout.n_photons - 1.0, coarse_layout.n_photons)
+        start = (np.full((counts.shape[1], nodes.size), 1.0 / counts.shape[1]) if previous is None
+                 else np.stack([np.interp(nodes, previous[0], row) for row in previous[1]]))
+
+        reported = [0]
+
+        def report(level_done, _total, offset=done):
+            reported[0] = level_done
+            if progress is not None:
+                progress(offset + level_done, sum(limits))
+
+        # the first level is cheap and runs in one call (each call restarts SQUAREM's step length)
+        theta, _, _, _ = solve_likelihood_chunked(coarse_layout, counts, regularisation / spacing, start, limit,
+                                                  chunk=chunk if previous is not None else limit, rtol=rtol,
+                                                  atol=atol, progress=report)
+        if reported[0] < limit:  # a level that stopped early counts as done
+            report(limit, None)
+        done += limit
+        theta = theta + 1e-9  # no exact zeros (EM keeps a zero entry at zero)
+        previous = (nodes, theta / theta.sum(axis=0, keepdims=True))
+    return interpolate(previous[1], hats)

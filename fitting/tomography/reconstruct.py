@@ -70,7 +70,8 @@ __all__ = [
     "Reconstruction", "reconstruct_povm", "ProblemLayout", "build_layout", "WeightedOperator",
     "weighted_operator", "solve_povm", "solve_povm_batch", "cross_validate", "predicted_frequencies",
     "objective_value", "project_columns_to_simplex", "coarse_start", "interpolation_matrix", "DEFAULT_GRID",
-    "DEFAULT_FOLDS", "BATCH", "CROSS_VALIDATION_TASK", "BOOTSTRAP_TASK", "METHODS", "LIKELIHOOD_GRID",
+    "DEFAULT_FOLDS", "BATCH", "CROSS_VALIDATION_TASK", "BOOTSTRAP_TASK", "COARSE_TASK", "SOLVE_TASK", "METHODS",
+    "LIKELIHOOD_GRID",
     "solve_likelihood", "solve_likelihood_batch",
 ]
 
@@ -89,6 +90,7 @@ CONSTRAINED_FRACTION = 1e-2  # n is "constrained" where the probe weight is >= 1
 CROSS_VALIDATION_TASK = "cross-validation (POVM)"  # progress task names
 BOOTSTRAP_TASK = "bootstrap (POVM)"
 SOLVE_TASK = "solve (POVM)"
+COARSE_TASK = "coarse start (POVM)"
 LARGE_CYCLES = 2_000  # fine-level SQUAREM cycles at most for banded (large) problems
 
 
@@ -231,7 +233,8 @@ def reconstruct_povm(coherent, thermal, counts, *, method: str = "likelihood", n
         seed: seeds the fold assignment and the bootstrap.
         tolerance: neglected tail mass of the default cutoff.
         progress: optional callback ``progress(task, done, total)`` (tasks
-            :data:`CROSS_VALIDATION_TASK` and :data:`BOOTSTRAP_TASK`); nothing is printed.
+            :data:`CROSS_VALIDATION_TASK`, :data:`BOOTSTRAP_TASK` and, for large likelihood
+            problems, :data:`COARSE_TASK` and :data:`SOLVE_TASK`); nothing is printed.
     """
     if method not in METHODS:
         raise ArgumentError(f"method: expected one of {', '.join(METHODS)}, got {method!r}")
@@ -287,15 +290,14 @@ def _reconstruct_likelihood(coherent, thermal, counts, *, n_photons, grid, folds
         chosen = float(absolute[int(np.argmin(scores))])  # the largest held-out log-likelihood
     else:
         scores, chosen = np.zeros(1), float(absolute[0])
-    if layout.blocks.shape[0] > 1:  # large: coarse start, then the fine solve in reported chunks
-        start = likelihood_coarse_start(layout, counts, chosen)
+    if layout.blocks.shape[0] > 1:  # large: coarse start, then the fine solve, both reported in chunks
+        def reporter(task):
+            return None if progress is None else lambda done, total: progress(task, done, total)
 
-        def report(done, total):
-            if progress is not None:
-                progress(SOLVE_TASK, done, total)
-
+        start = likelihood_coarse_start(layout, counts, chosen, progress=reporter(COARSE_TASK))
         theta, objective, cycles, converged = solve_likelihood_chunked(
-            layout, counts, chosen, start, LARGE_CYCLES, rtol=LIKELIHOOD_RTOL, atol=LIKELIHOOD_ATOL, progress=report)
+            layout, counts, chosen, start, LARGE_CYCLES, rtol=LIKELIHOOD_RTOL, atol=LIKELIHOOD_ATOL,
+            progress=reporter(SOLVE_TASK))
     else:
         theta, objective, cycles, converged = solve_likelihood(layout, counts, chosen, None, rtol=LIKELIHOOD_RTOL,
                                                                atol=LIKELIHOOD_ATOL)
