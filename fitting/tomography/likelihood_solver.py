@@ -605,7 +605,8 @@ def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float
     (:func:`povm_solver.coarse_problem`), then interpolated onto every photon number.
     ``max_cycles``: SQUAREM cycles at most on the first level and on each later one; later
     levels run ``chunk`` at a time, and ``progress(done, total)`` follows after each call
-    (cycles, all levels' limits in total; a level that converges early counts as done). Shape (n_outcomes, n_photons).
+    (cycles, all levels' limits in total; a level that converges early counts as done).
+    Returns theta, shape (n_outcomes, n_photons).
 
     The grids are nested and a piecewise-linear theta keeps its penalty on a finer grid (each
     interval cut into m parts of 1/m the difference and 1/m the spacing), so every level
@@ -614,7 +615,7 @@ def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float
 
     Why a cascade: on 20 outcomes x 20,000 photon numbers (benchmark problem), 60 SQUAREM
     cycles on every photon number after a 400-node start reached f = 13,882 nats; 100 cycles
-    on 2,000 nodes reach 13,877 and 500 reach 13,832, each cycle at about a sixth of the cost.
+    on about 2,000 nodes reach 13,877 and 500 reach 13,832, each cycle at a fifth of the cost.
     EM's slow directions are smooth ones, which a grid of nodes carries cheaply.
     """
     counts = np.asarray(counts, dtype=float)
