@@ -12,7 +12,9 @@ import pytest
 from povmfit.fitting.data.errors import ArgumentError
 from povmfit.fitting.tomography.cross_check import cross_check, null_statistics
 from povmfit.fitting.tomography.likelihood_solver import (
+    coarse_levels,
     em_step_numpy,
+    likelihood_coarse_start,
     likelihood_objective,
     probe_outer_products,
     solve_likelihood,
@@ -20,6 +22,7 @@ from povmfit.fitting.tomography.likelihood_solver import (
     uses_interior_point,
 )
 from povmfit.fitting.tomography.model_free import CROSS_CHECK_SIMULATIONS, reconstructions_under_model
+from povmfit.fitting.tomography.povm_solver import coarse_problem
 from povmfit.fitting.tomography.reconstruct import build_layout, predicted_frequencies, reconstruct_povm
 from povmfit.models import choose_cutoff, parse_model_spec, probe_distributions
 
@@ -420,8 +423,6 @@ def test_photon_numbers_beyond_every_probe_window_are_carried_along():
 def test_banded_coarse_layout_predicts_like_the_dense_product_with_the_hat_functions(n_coarse):
     # Source: independent brute force: the dense probe matrix times the hat functions
     # (F @ H^T, H from np.interp of unit node vectors), predictions compared exactly.
-    from povmfit.fitting.tomography.povm_solver import coarse_problem
-
     coherent = np.linspace(0.0, 3000.0, 60)
     thermal = np.zeros_like(coherent)
     n_photons = choose_cutoff(coherent, thermal)
@@ -440,8 +441,6 @@ def test_each_level_of_the_coarse_cascade_ends_no_higher_than_the_last():
     # Source: exact identities plus EM's monotonicity (Dempster, Laird & Rubin 1977): nested
     # grids (41 -> 201 nodes on 2,001 photon numbers, integer spacings 50 and 10) keep a
     # piecewise-linear theta and its penalty, so the second level starts where the first ended.
-    from povmfit.fitting.tomography.likelihood_solver import coarse_levels, likelihood_coarse_start
-
     coherent = np.linspace(0.0, 1500.0, 40)
     thermal = np.zeros_like(coherent)
     n_photons = 2001

@@ -628,18 +628,15 @@ def likelihood_coarse_start(layout: ProblemLayout, counts, regularisation: float
         start = (np.full((counts.shape[1], nodes.size), 1.0 / counts.shape[1]) if previous is None
                  else np.stack([np.interp(nodes, previous[0], row) for row in previous[1]]))
 
-        reported = [0]
-
         def report(level_done, _total, offset=done):
-            reported[0] = level_done
             if progress is not None:
                 progress(offset + level_done, sum(limits))
 
         # the first level is cheap and runs in one call (each call restarts SQUAREM's step length)
-        theta, _, _, _ = solve_likelihood_chunked(coarse_layout, counts, regularisation / spacing, start, limit,
-                                                  chunk=chunk if previous is not None else limit, rtol=rtol,
-                                                  atol=atol, progress=report)
-        if reported[0] < limit:  # a level that stopped early counts as done
+        theta, _, cycles, _ = solve_likelihood_chunked(coarse_layout, counts, regularisation / spacing, start, limit,
+                                                       chunk=chunk if previous is not None else limit, rtol=rtol,
+                                                       atol=atol, progress=report)
+        if cycles < limit:  # a level that stopped early counts as done
             report(limit, None)
         done += limit
         theta = theta + 1e-9  # no exact zeros (EM keeps a zero entry at zero)
