@@ -206,7 +206,10 @@ def _em(theta, counts_rows, blocks, stride, constant, g):
     return _m_step(expected, theta, g), _objective_from_q(q, counts_rows, constant, g, theta)
 
 
-@partial(jax.jit, static_argnames=("stride",))
+# XLA's CPU back end at optimisation level 1 instead of 2 compiles this loop in about 0.7 of the
+# time, with the same per-cycle time and the same results to the last bit (measured on the
+# 20 x 20,000 benchmark's three shapes)
+@partial(jax.jit, static_argnames=("stride",), compiler_options={"xla_backend_optimization_level": 1})
 def _squarem(theta0, counts_rows, blocks, constant, g, active, rtol, atol, max_cycles, stride):
     """SQUAREM-accelerated penalised EM on a batch (see module docstring).
 
