@@ -221,6 +221,11 @@ def _compiling_and_cached(method, site=None):
         return compiling, _run_large(*problem, cache_home=cache_home, site=site)
 
 
+def _seconds(result) -> float:
+    """Build + solve time of one large run."""
+    return result["build"] + result["solve"]
+
+
 def _large_rows():
     rows = []
     with tempfile.TemporaryDirectory() as scratch:
@@ -234,9 +239,8 @@ def _large_rows():
     if failed:
         return [{"name": f"ML 20x20000 failed: {failed[0]}", "value": None, "unit": "",
                  "baseline": None, "ratio": None, "target": None, "passed": False}]
-    seconds = lambda r: r["build"] + r["solve"]  # noqa: E731
     for i, label in enumerate(("compiling", "compiled code from the cache")):
-        t_ml, t_before, t_now = seconds(ml[i]), seconds(before[i]), seconds(ls[i])
+        t_ml, t_before, t_now = _seconds(ml[i]), _seconds(before[i]), _seconds(ls[i])
         rows.append({"name": f"ML 20x20000, 2000 probes, {label}: build + solve (s) (baseline least squares at "
                              f"{TARGET_BASE_COMMIT}, when the target was set; ratio = baseline/ML)",
                      "value": t_ml, "unit": "s", "baseline": t_before, "ratio": t_before / t_ml,
@@ -249,7 +253,7 @@ def _large_rows():
                          f"{TARGET_BASE_COMMIT} {before[0]['max_error']:.4f})", "value": ml[0]["max_error"],
                  "unit": "", "baseline": ls[0]["max_error"], "ratio": None, "target": None, "passed": None})
     rows.append({"name": f"ML 20x20000: objective f (nats) after the cascade + {FINE_CYCLES} fine cycles (baseline: one "
-                         f"level + {EARLIER_FINE_CYCLES} fine cycles, {seconds(earlier):.1f} s; "
+                         f"level + {EARLIER_FINE_CYCLES} fine cycles, {_seconds(earlier):.1f} s; "
                          f"max error {earlier['max_error']:.4f})",
                  "value": ml[0]["objective"], "unit": "nats", "baseline": earlier["objective"], "ratio": None,
                  "target": "<= baseline", "passed": ml[0]["objective"] <= earlier["objective"]})
